@@ -1,0 +1,478 @@
+"""Per-image heatmaps and the statistics read from them.
+
+The heatmap of an image is the drop of the target class's score when each part of the
+image is hidden (occlusion sensitivity, Zeiler and Fergus, ECCV 2014): for patch plans,
+each pixel gets the mean drop over the patches that cover it; for random smooth masks,
+the RISE estimator (Petsiuk, Das and Saenko, BMVC 2018), rescaled to the same units
+(see :func:`rise_heatmap`).
+
+From the heatmap come the per-image statistics the findings are built on:
+
+- :func:`concentration`: share of the positive heat mass in the top 5% of pixels;
+- :func:`gini`: the Gini coefficient of the positive part of the map;
+- the *decisive area*: the smallest share of the image that, hidden in heatmap order,
+  moves the decision away from the target class (capped at 25%), and its box;
+- the deletion and insertion curves and their areas (Petsiuk et al. 2018), a check of
+  the heatmap's own faithfulness;
+- with an object mask: the share of heat outside the object, and whether the decision
+  survives erasing the object and survives erasing the background (the no-foreground
+  and only-foreground tests of Xiao, Engstrom, Ilyas and Madry, ICLR 2021).
+
+Everything that needs forward passes is a *job* for :class:`~shortcut_audit.engine.PassEngine`:
+a generator that yields images to score and returns its result. This module prints
+nothing and opens nothing.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import ndimage
+
+from .engine import Job, run_job
+from .errors import ImageSkip, UsageError
+from .occlusion import Fill, Plan, SmoothMaskPlan, fill_image, iter_weights, pass_count, perturb
+
+__all__ = [
+    "Heatmap",
+    "ImageStats",
+    "DECISIVE_LADDER",
+    "CURVE_STEPS",
+    "heatmap_job",
+    "occlusion_heatmap",
+    "rise_heatmap",
+    "concentration",
+    "gini",
+    "heat_order",
+    "box_of",
+    "peak_box",
+    "curve_area",
+    "background_share",
+    "erase_object",
+    "estimate_object_mask",
+    "image_job",
+]
+
+#: Shares of the image tried, in one batch, when looking for the decisive area. 5% is
+#: on the ladder so "decisive area at most 5%" is decided exactly; bisection then
+#: refines between the last share that kept the decision and the first that moved it.
+DECISIVE_LADDER = (0.005, 0.01, 0.02, 0.03, 0.05, 0.075, 0.1, 0.15, 0.2, 0.25)
+#: Bisection steps after the ladder (one pass each).
+DECISIVE_BISECT = 3
+#: Points on the deletion and insertion curves, 0% to 100% in equal steps.
+CURVE_STEPS = 16
+
+
+@dataclass(frozen=True, kw_only=True)
+class Heatmap:
+    """A heatmap at model-input resolution and what it was made from.
+
+    Attributes
+    ----------
+    values : (H, W) float32
+        Score drop of ``target`` when the pixel is hidden (positive = the pixel supports
+        the class).
+    target : int
+        The class index explained.
+    base_scores : (K,) float32
+        Scores of the unperturbed image.
+    passes : int
+        Forward passes used, the unperturbed one included.
+    coverage : float
+        Share of pixels hidden by at least one patch (1.0 for grids and smooth masks).
+    """
+
+    values: np.ndarray
+    target: int
+    base_scores: np.ndarray
+    passes: int
+    coverage: float = 1.0
+
+    @property
+    def base_score(self) -> float:
+        return float(self.base_scores[self.target])
+
+    @property
+    def predicted(self) -> int:
+        return int(np.argmax(self.base_scores))
+
+
+def _check_image(image: np.ndarray) -> np.ndarray:
+    image = np.asarray(image, dtype=np.float32)
+    if image.ndim != 3 or image.shape[2] not in (1, 3):
+        raise UsageError(f"image must be an (H, W, C) array with C = 1 or 3; got shape {image.shape}.")
+    return image
+
+
+def _check_finite(scores: np.ndarray, what: str) -> None:
+    if not np.all(np.isfinite(scores)):
+        raise ImageSkip(f"the model returned NaN or infinity for {what}; image skipped")
+
+
+def rise_heatmap(score_sum: np.ndarray, score_mean: float, n: int, keep: float) -> np.ndarray:
+    """The RISE estimate, rescaled to a score drop.
+
+    RISE estimates ``S(p) = E[s(M . x) M(p)] / E[M(p)]`` by ``sum_k s_k M_k(p) / (n * keep)``
+    (Petsiuk et al. 2018, eq. 6). For a score that is linear in the kept weights,
+    ``S(p) - E[s] = (1 - keep) * a_p``, where ``a_p`` is the drop from hiding pixel ``p``
+    alone; so ``(S(p) - mean_k s_k) / (1 - keep)`` is reported, in the units of the
+    occlusion heatmaps.
+
+    Parameters
+    ----------
+    score_sum : (H, W) array
+        ``sum_k s_k M_k`` over the ``n`` masks (``M_k`` the kept weight).
+    score_mean : float
+        ``mean_k s_k``.
+    n : int
+    keep : float
+    """
+    estimator = score_sum / (n * keep)
+    return ((estimator - score_mean) / (1.0 - keep)).astype(np.float32)
+
+
+def heatmap_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None = None,
+                chunk: int = 64) -> Job:
+    """A job that returns the :class:`Heatmap` of ``image``.
+
+    The first request holds the unperturbed image and the first chunk of perturbations,
+    so a batch is never spent on one image alone.
+    """
+    image = _check_image(image)
+    h, w, _ = image.shape
+    filled = fill_image(image, fill)
+    rise = isinstance(plan, SmoothMaskPlan)
+    total = pass_count(plan, h, w)
+    acc = np.zeros((h, w), dtype=np.float64)
+    cover = np.zeros((h, w), dtype=np.float64)
+    score_total = 0.0
+    base = None
+    t = target
+    for weights in iter_weights(plan, h, w, chunk=chunk):
+        batch = perturb(image, weights, filled)
+        if base is None:
+            scores = yield np.concatenate([image[None], batch], axis=0)
+            base, scores = scores[0], scores[1:]
+            _check_finite(base, "the unperturbed image")
+            if t is None:
+                t = int(np.argmax(base))
+            if not (0 <= t < len(base)):
+                raise UsageError(f"target class {t} is out of range for a model with {len(base)} classes.")
+        else:
+            scores = yield batch
+        _check_finite(scores, "a perturbed image")
+        s = scores[:, t].astype(np.float64)
+        if rise:
+            keep = 1.0 - weights.astype(np.float64)
+            acc += np.tensordot(s, keep, axes=1)
+            score_total += float(s.sum())
+        else:
+            drop = base[t] - s
+            wts = weights.astype(np.float64)
+            acc += np.tensordot(drop, wts, axes=1)
+            cover += wts.sum(axis=0)
+    if rise:
+        values = rise_heatmap(acc, score_total / total, total, plan.keep)
+        coverage = 1.0
+    else:
+        covered = cover > 0
+        values = np.zeros((h, w), dtype=np.float32)
+        values[covered] = (acc[covered] / cover[covered]).astype(np.float32)
+        coverage = float(covered.mean())
+    return Heatmap(values=values, target=int(t), base_scores=np.asarray(base, np.float32),
+                   passes=total + 1, coverage=coverage)
+
+
+def occlusion_heatmap(scorer, image: np.ndarray, *, plan: Plan, fill: Fill,
+                      target: int | None = None, batch_size: int = 64) -> Heatmap:
+    """The heatmap of one image, computed with ``scorer``.
+
+    Parameters
+    ----------
+    scorer : callable
+        ``scorer(batch (N, H, W, C)) -> (N, K)`` scores (probabilities or logits).
+    image : (H, W, C) float32, 0..255
+    plan : Plan
+    fill : Fill
+    target : int, optional
+        Class to explain; the unperturbed prediction when omitted.
+
+    Returns
+    -------
+    Heatmap
+
+    >>> from shortcut_audit.occlusion import GridPlan, Fill
+    >>> img = np.zeros((4, 4, 1), np.float32); img[0, 0] = 1
+    >>> f = lambda b: b.reshape(len(b), -1)[:, :1]          # score = pixel (0, 0)
+    >>> occlusion_heatmap(f, img, plan=GridPlan(patch=2, stride=2),
+    ...                   fill=Fill(kind="constant", value=0.0)).values[:2, :2].tolist()
+    [[1.0, 1.0], [1.0, 1.0]]
+    """
+    return run_job(scorer, heatmap_job(image, plan=plan, fill=fill, target=target,
+                                       chunk=batch_size), batch_size=batch_size)
+
+
+# ---------------------------------------------------------------- map statistics
+
+def concentration(values: np.ndarray, *, top: float = 0.05) -> float:
+    """Share of the positive heat mass held by the top ``top`` share of pixels.
+
+    >>> concentration(np.array([[4.0, 0.0], [0.0, 0.0]]), top=0.25)
+    1.0
+    """
+    pos = np.clip(np.asarray(values, dtype=np.float64).ravel(), 0.0, None)
+    total = pos.sum()
+    if total <= 0:
+        return 0.0
+    k = max(1, int(math.ceil(top * pos.size)))
+    return float(np.sort(pos)[::-1][:k].sum() / total)
+
+
+def gini(values: np.ndarray) -> float:
+    """Gini coefficient of the positive part of a map.
+
+    ``G = sum_i sum_j |x_i - x_j| / (2 n^2 mean(x))``, computed from the sorted values as
+    ``(2 sum_i i x_(i)) / (n sum x) - (n + 1) / n``. A uniform map gives 0; all mass on
+    one of ``n`` pixels gives ``(n - 1) / n``. An all-zero map gives 0.
+
+    >>> gini(np.ones((2, 2)))
+    0.0
+    >>> gini(np.array([0.0, 0.0, 0.0, 5.0]))
+    0.75
+    """
+    x = np.sort(np.clip(np.asarray(values, dtype=np.float64).ravel(), 0.0, None))
+    n = x.size
+    total = x.sum()
+    if n == 0 or total <= 0:
+        return 0.0
+    i = np.arange(1, n + 1)
+    return float(2.0 * np.sum(i * x) / (n * total) - (n + 1.0) / n)
+
+
+def heat_order(values: np.ndarray) -> np.ndarray:
+    """Flat pixel indices, hottest first; ties by index (stable), so results are repeatable."""
+    return np.argsort(-np.asarray(values, dtype=np.float64).ravel(), kind="stable")
+
+
+def _top_mask(order: np.ndarray, share: float, shape: tuple[int, int]) -> np.ndarray:
+    n = order.size
+    k = int(round(share * n))
+    mask = np.zeros(n, dtype=bool)
+    mask[order[:k]] = True
+    return mask.reshape(shape)
+
+
+def box_of(mask: np.ndarray) -> list[float] | None:
+    """Bounding box ``[x0, y0, x1, y1]`` of a boolean mask, as fractions of width and height.
+
+    >>> m = np.zeros((4, 4), bool); m[1:3, 2:4] = True
+    >>> box_of(m)
+    [0.5, 0.25, 1.0, 0.75]
+    """
+    rows = np.flatnonzero(mask.any(axis=1))
+    cols = np.flatnonzero(mask.any(axis=0))
+    if rows.size == 0:
+        return None
+    h, w = mask.shape
+    return [float(cols[0] / w), float(rows[0] / h), float((cols[-1] + 1) / w), float((rows[-1] + 1) / h)]
+
+
+def peak_box(values: np.ndarray, *, share: float = 0.05) -> list[float] | None:
+    """Box of the largest connected blob among the hottest ``share`` of pixels."""
+    mask = _top_mask(heat_order(values), share, values.shape) & (np.asarray(values) > 0)
+    if not mask.any():
+        return None
+    labels, n = ndimage.label(mask)
+    if n > 1:
+        sizes = ndimage.sum_labels(mask, labels, index=np.arange(1, n + 1))
+        mask = labels == (int(np.argmax(sizes)) + 1)
+    return box_of(mask)
+
+
+def curve_area(xs: np.ndarray, ys: np.ndarray) -> float:
+    """Area under a curve by the trapezoid rule (the area of the deletion/insertion curves)."""
+    xs = np.asarray(xs, dtype=np.float64)
+    ys = np.asarray(ys, dtype=np.float64)
+    return float(np.sum((xs[1:] - xs[:-1]) * (ys[1:] + ys[:-1]) / 2.0))
+
+
+def background_share(values: np.ndarray, mask: np.ndarray) -> float | None:
+    """Share of the positive heat mass outside the object ``mask`` (None when no heat)."""
+    pos = np.clip(np.asarray(values, dtype=np.float64), 0.0, None)
+    total = pos.sum()
+    if total <= 0:
+        return None
+    return float(pos[~mask].sum() / total)
+
+
+def erase_object(image: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    """The image with the object filled in from its surroundings.
+
+    Each object pixel takes the colour of the nearest background pixel (Euclidean
+    distance transform), then the filled region is smoothed so no copied edge remains.
+    """
+    if mask.all() or not mask.any():
+        return image.copy()
+    _, (ri, ci) = ndimage.distance_transform_edt(mask, return_indices=True)
+    out = image[ri, ci]
+    smooth = ndimage.gaussian_filter(out, sigma=(2.0, 2.0, 0), mode="nearest")
+    out = np.where(mask[..., None], smooth, image)
+    return out.astype(np.float32)
+
+
+def erase_background(image: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    """The object alone, on a flat backdrop of the background's mean colour."""
+    if mask.all() or not mask.any():
+        return image.copy()
+    colour = image[~mask].mean(axis=0)
+    return np.where(mask[..., None], image, colour[None, None, :]).astype(np.float32)
+
+
+def estimate_object_mask(image: np.ndarray, *, tolerance: float = 28.0) -> np.ndarray | None:
+    """An object mask for an image on a plain or simple backdrop, or None.
+
+    The backdrop colour is the median of the border pixels; pixels within ``tolerance``
+    (Euclidean distance in 0..255 RGB) of it that connect to the border are backdrop,
+    the rest (holes filled) is the object. Returns None when the border is not plain
+    (its pixels spread more than ``tolerance``) or when the object found covers less
+    than 3% or more than 85% of the image: then no honest estimate exists.
+    """
+    img = np.asarray(image, dtype=np.float32)
+    h, w, c = img.shape
+    border = np.concatenate([img[0], img[-1], img[:, 0], img[:, -1]], axis=0)
+    colour = np.median(border, axis=0)
+    spread = np.sqrt(((border - colour) ** 2).sum(axis=1))
+    if np.median(spread) > tolerance / 2 or np.quantile(spread, 0.9) > tolerance:
+        return None
+    near = np.sqrt(((img - colour) ** 2).sum(axis=2)) <= tolerance
+    labels, _ = ndimage.label(near)
+    edge = np.unique(np.concatenate([labels[0], labels[-1], labels[:, 0], labels[:, -1]]))
+    edge = edge[edge > 0]
+    backdrop = np.isin(labels, edge)
+    obj = ndimage.binary_fill_holes(~backdrop)
+    share = float(obj.mean())
+    if share < 0.03 or share > 0.85:
+        return None
+    return obj
+
+
+# ---------------------------------------------------------------- the image job
+
+@dataclass(frozen=True, kw_only=True)
+class ImageStats:
+    """Everything measured on one image (fractions of width and height for boxes)."""
+
+    target: int
+    predicted: int
+    base_scores: np.ndarray
+    heatmap: Heatmap
+    concentration: float
+    gini: float
+    decisive_area: float | None
+    decisive_box: list[float] | None
+    decisive_score: float | None
+    peak_box: list[float] | None
+    deletion: list[float]
+    insertion: list[float]
+    deletion_area: float
+    insertion_area: float
+    background_share: float | None = None
+    mask_source: str | None = None
+    survives_object_erased: bool | None = None
+    survives_background_erased: bool | None = None
+    passes: int = 0
+    extra: dict = field(default_factory=dict)
+
+
+def image_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None = None,
+              mask: np.ndarray | None = None, mask_source: str | None = None,
+              chunk: int = 64, curves: bool = True) -> Job:
+    """A job that returns the :class:`ImageStats` of one image.
+
+    Passes: the heatmap's, then one batch of the decisive-area ladder (plus
+    ``DECISIVE_BISECT`` single passes), one batch for the deletion and insertion curves,
+    and two passes for the object and background erasures when a mask is given.
+    """
+    image = _check_image(image)
+    h, w, _ = image.shape
+    hm: Heatmap = yield from heatmap_job(image, plan=plan, fill=fill, target=target, chunk=chunk)
+    t = hm.target
+    base = hm.base_scores
+    passes = hm.passes
+    filled = fill_image(image, fill)
+    order = heat_order(hm.values)
+
+    def hidden(share: float) -> np.ndarray:
+        return _top_mask(order, share, (h, w))
+
+    def with_hidden(masks: list[np.ndarray]) -> np.ndarray:
+        weights = np.stack(masks).astype(np.float32)
+        return perturb(image, weights, filled)
+
+    # Decisive area: the ladder in one request, then bisection.
+    requests = [hidden(s) for s in DECISIVE_LADDER]
+    n_ladder = len(requests)
+    curve_x = np.linspace(0.0, 1.0, CURVE_STEPS + 1)
+    if curves:
+        # deletion: hide the hottest x; insertion: show only the hottest x.
+        requests += [hidden(x) for x in curve_x[1:]]
+        requests += [~hidden(x) for x in curve_x[:-1]]
+    erase_batch = []
+    if mask is not None and mask.any() and not mask.all():
+        erase_batch = [erase_object(image, mask), erase_background(image, mask)]
+    batch = with_hidden(requests)
+    if erase_batch:
+        batch = np.concatenate([batch, np.stack(erase_batch)], axis=0)
+    scores = yield batch
+    _check_finite(scores, "a perturbed image")
+    passes += len(batch)
+    ladder = scores[:n_ladder]
+    moved = np.argmax(ladder, axis=1) != t
+    decisive_area = decisive_score = None
+    decisive_box = None
+    if moved.any():
+        first = int(np.argmax(moved))
+        hi = DECISIVE_LADDER[first]
+        lo = DECISIVE_LADDER[first - 1] if first > 0 else 0.0
+        hi_score = float(ladder[first, t])
+        for _ in range(DECISIVE_BISECT):
+            mid = (lo + hi) / 2.0
+            if int(round(mid * h * w)) in (int(round(lo * h * w)), int(round(hi * h * w))):
+                break
+            s = yield with_hidden([hidden(mid)])
+            _check_finite(s, "a perturbed image")
+            passes += 1
+            if int(np.argmax(s[0])) != t:
+                hi, hi_score = mid, float(s[0, t])
+            else:
+                lo = mid
+        decisive_area = float(hi)
+        decisive_score = hi_score
+        decisive_box = box_of(hidden(hi))
+    deletion = insertion = []
+    del_area = ins_area = float("nan")
+    if curves:
+        cs = scores[n_ladder:n_ladder + 2 * CURVE_STEPS, t]
+        deletion = [float(base[t])] + [float(v) for v in cs[:CURVE_STEPS]]
+        insertion = [float(v) for v in cs[CURVE_STEPS:]] + [float(base[t])]
+        del_area = curve_area(curve_x, np.asarray(deletion))
+        ins_area = curve_area(curve_x, np.asarray(insertion))
+    bg_share = survives_obj = survives_bg = None
+    if mask is not None:
+        bg_share = background_share(hm.values, mask)
+        if erase_batch:
+            tail = scores[-2:]
+            survives_obj = bool(int(np.argmax(tail[0])) == t)
+            survives_bg = bool(int(np.argmax(tail[1])) == t)
+    return ImageStats(
+        target=t, predicted=int(np.argmax(base)), base_scores=base, heatmap=hm,
+        concentration=concentration(hm.values), gini=gini(hm.values),
+        decisive_area=decisive_area, decisive_box=decisive_box, decisive_score=decisive_score,
+        peak_box=peak_box(hm.values), deletion=deletion, insertion=insertion,
+        deletion_area=del_area, insertion_area=ins_area, background_share=bg_share,
+        mask_source=mask_source if mask is not None else None,
+        survives_object_erased=survives_obj, survives_background_erased=survives_bg,
+        passes=passes,
+    )
