@@ -1,0 +1,189 @@
+"""Per-class aggregates of the per-image statistics.
+
+A class is summarised from the images whose label it is. Statistics about how the
+decision can be moved (decisive area, decisive boxes) are taken over the images the
+model gets right: an image already misclassified has no decision of its own to move.
+
+Pure: numpy arrays in, a frozen dataclass out. The class-mean heatmap is accumulated
+image by image (:class:`ClassAccumulator`), so no class's heatmaps are held at once.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .sensitivity import box_of
+
+__all__ = [
+    "ImageSummary",
+    "ClassSummary",
+    "ClassAccumulator",
+    "SMALL_AREA",
+    "BOX_MAX_AREA",
+    "summarise_classes",
+    "place_map",
+]
+
+#: The decisive area at or below which an image's decision "hinges on a small region".
+SMALL_AREA = 0.05
+#: Decisive boxes larger than this share of the image say little about a place.
+BOX_MAX_AREA = 0.25
+
+
+@dataclass(frozen=True, kw_only=True)
+class ImageSummary:
+    """The per-image numbers the class aggregates and findings use (no heatmap)."""
+
+    path: str
+    label: int
+    predicted: int
+    confidence: float              # probability of the predicted class
+    label_score: float             # score of the label class (the heatmap's target)
+    concentration: float
+    gini: float
+    decisive_area: float | None
+    decisive_box: list[float] | None
+    peak_box: list[float] | None
+    deletion_area: float
+    insertion_area: float
+    background_share: float | None = None
+    mask_source: str | None = None
+    survives_object_erased: bool | None = None
+    survives_background_erased: bool | None = None
+
+    @property
+    def correct(self) -> bool:
+        return self.predicted == self.label
+
+    @property
+    def small(self) -> bool:
+        return self.correct and self.decisive_area is not None and self.decisive_area <= SMALL_AREA
+
+
+def _box_area(box: list[float] | None) -> float:
+    if box is None:
+        return 1.0
+    return max(0.0, box[2] - box[0]) * max(0.0, box[3] - box[1])
+
+
+def place_map(boxes: list[list[float]], shape: tuple[int, int]) -> np.ndarray:
+    """How many of ``boxes`` cover each pixel of an image of ``shape`` (rows, columns)."""
+    h, w = shape
+    out = np.zeros((h, w), dtype=np.float64)
+    for x0, y0, x1, y1 in boxes:
+        r0, r1 = int(np.floor(y0 * h)), int(np.ceil(y1 * h))
+        c0, c1 = int(np.floor(x0 * w)), int(np.ceil(x1 * w))
+        out[r0:r1, c0:c1] += 1.0
+    return out
+
+
+@dataclass(frozen=True, kw_only=True)
+class ClassSummary:
+    """One class's aggregates.
+
+    ``metrics`` holds every number the findings read, by name, so audit.json, the
+    report and compare see the same values.
+    """
+
+    name: str
+    index: int
+    images: int
+    correct: int
+    accuracy: float
+    mean_confidence: float
+    mean_heatmap: np.ndarray | None
+    metrics: dict = field(default_factory=dict)
+    place_box: list[float] | None = None      # where decisive boxes agree most
+
+
+class ClassAccumulator:
+    """Streams heatmaps into per-class sums (the only heatmap state of a scan)."""
+
+    def __init__(self, n_classes: int, shape: tuple[int, int]):
+        self.sums = np.zeros((n_classes,) + tuple(shape), dtype=np.float64)
+        self.counts = np.zeros(n_classes, dtype=np.int64)
+
+    def add(self, label: int, heatmap: np.ndarray) -> None:
+        self.sums[label] += heatmap
+        self.counts[label] += 1
+
+    def mean(self, label: int) -> np.ndarray | None:
+        if self.counts[label] == 0:
+            return None
+        return (self.sums[label] / self.counts[label]).astype(np.float32)
+
+
+def _median(values: list[float]) -> float | None:
+    return float(np.median(values)) if values else None
+
+
+def _rate(flags: list[bool]) -> float | None:
+    return float(np.mean(flags)) if flags else None
+
+
+def summarise_classes(images: list[ImageSummary], labels: tuple[str, ...], *,
+                      accumulator: ClassAccumulator | None = None,
+                      shape: tuple[int, int] | None = None) -> list[ClassSummary]:
+    """Per-class aggregates for every class that has at least one image.
+
+    Metrics (None where they cannot be computed):
+
+    - ``small_area_rate``: share of correctly predicted images whose decisive area is
+      at most :data:`SMALL_AREA`;
+    - ``decisive_rate``: share whose decision moves within the 25% cap at all;
+    - ``box_agreement``: the largest share of the class's correctly predicted images
+      whose (small) decisive boxes cover one common pixel; ``place_box`` is where;
+    - ``median_decisive_area``, ``mean_concentration``, ``mean_gini``,
+      ``mean_deletion_area``, ``mean_insertion_area``;
+    - with masks: ``median_background_share``, ``object_erased_survival`` (share of
+      images still predicted as the class with the object erased),
+      ``background_erased_survival``, ``masked_images`` and ``estimated_masks``.
+    """
+    shape = shape or (64, 64)
+    out = []
+    for index, name in enumerate(labels):
+        members = [im for im in images if im.label == index]
+        if not members:
+            continue
+        right = [im for im in members if im.correct]
+        areas = [im.decisive_area for im in right if im.decisive_area is not None]
+        boxes = [im.decisive_box for im in right
+                 if im.decisive_box is not None and _box_area(im.decisive_box) <= BOX_MAX_AREA]
+        agreement, place_box = None, None
+        if right:
+            if boxes:
+                pm = place_map(boxes, shape)
+                peak = pm.max()
+                agreement = float(peak / len(right))
+                place_box = box_of(pm >= max(1.0, 0.5 * peak))
+            else:
+                agreement = 0.0
+        masked = [im for im in members if im.background_share is not None]
+        metrics = {
+            "small_area_rate": _rate([im.small for im in right]),
+            "decisive_rate": _rate([im.decisive_area is not None for im in right]),
+            "box_agreement": agreement,
+            "median_decisive_area": _median(areas),
+            "mean_concentration": float(np.mean([im.concentration for im in members])),
+            "mean_gini": float(np.mean([im.gini for im in members])),
+            "mean_deletion_area": float(np.nanmean([im.deletion_area for im in members])),
+            "mean_insertion_area": float(np.nanmean([im.insertion_area for im in members])),
+            "median_background_share": _median([im.background_share for im in masked]),
+            "object_erased_survival": _rate([bool(im.survives_object_erased) for im in right
+                                             if im.survives_object_erased is not None]),
+            "background_erased_survival": _rate([bool(im.survives_background_erased) for im in right
+                                                 if im.survives_background_erased is not None]),
+            "masked_images": len(masked),
+            "estimated_masks": sum(1 for im in masked if im.mask_source == "estimated"),
+            "correct_images": len(right),
+        }
+        out.append(ClassSummary(
+            name=name, index=index, images=len(members), correct=len(right),
+            accuracy=len(right) / len(members),
+            mean_confidence=float(np.mean([im.confidence for im in members])),
+            mean_heatmap=accumulator.mean(index) if accumulator is not None else None,
+            metrics=metrics, place_box=place_box,
+        ))
+    return out

@@ -1,0 +1,931 @@
+"""Find labelled images on disk and decode them safely at the model's input size.
+
+This is the only module of the tool's core that imports Pillow. Everything after it
+receives numpy arrays: pixels as ``(H, W, C)`` float32 in 0..255 with ``C`` = 3 (RGB)
+or 1 (gray), object masks as ``(H, W)`` bool, both already at the model's size.
+
+Two steps, so that a large image set never sits in memory:
+
+1. :func:`list_images` walks a folder-per-class tree (or reads a CSV manifest) and
+   returns :class:`ImageEntry` values (paths and labels, nothing decoded) together with
+   a :class:`Skip` for every file that cannot take part, with the reason.
+2. :func:`iter_records` decodes the entries one at a time (optionally a few ahead, in
+   threads) and yields an :class:`ImageRecord` per image, or a :class:`Skip` for an
+   image that cannot be decoded. It never raises for a bad image.
+
+Decoding (:func:`load_image`) refuses decompression bombs from the header alone, applies
+the EXIF orientation, takes the first frame of an animation, composites transparency on
+a background colour, maps 16-bit values to 0..255 by dividing by 257, and converts
+CMYK, palette and grayscale images to the channels the model wants. One resize
+(:func:`fit`) serves pixels and masks, so both always share the same geometry.
+Colours are not colour-managed: embedded ICC profiles are ignored.
+
+Paths in results (``ImageEntry.path``, ``Skip.path``) are relative to the dataset root,
+with ``/`` separators, and are always valid UTF-8 text: bytes of a file name that are
+not UTF-8 are shown as ``\\xff`` escapes. ``ImageEntry.file`` keeps the real path.
+"""
+
+from __future__ import annotations
+
+import csv
+import os
+import re
+from collections import deque
+from collections.abc import Iterable, Iterator, Sequence
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
+from pathlib import Path, PurePosixPath
+
+import numpy as np
+from PIL import Image, ImageOps, UnidentifiedImageError
+
+from shortcut_audit.errors import DataError, ImageSkip, UsageError
+
+__all__ = [
+    "ImageEntry",
+    "ImageRecord",
+    "Skip",
+    "MAX_PIXELS",
+    "RESIZE_MODES",
+    "IMAGE_EXTENSIONS",
+    "PIXEL_RESAMPLE",
+    "MASK_RESAMPLE",
+    "load_image",
+    "load_mask",
+    "fit",
+    "list_images",
+    "class_names",
+    "iter_records",
+]
+
+MAX_PIXELS: int = 89_478_485
+"""Largest image, in pixels (width x height), that is decoded at all.
+
+Pillow's own default decompression-bomb limit (``PIL.Image.MAX_IMAGE_PIXELS``, about
+a 9459 x 9459 image, 256 MB as RGB at 24 bits). Larger images are refused from the
+header, before any pixel is decoded.
+"""
+
+RESIZE_MODES: tuple[str, ...] = ("stretch", "crop", "pad")
+"""How an image meets the model's input size; see :func:`fit`."""
+
+IMAGE_EXTENSIONS: tuple[str, ...] = (
+    ".png", ".jpg", ".jpeg", ".bmp", ".gif", ".webp", ".tif", ".tiff",
+)
+"""File name endings (case-insensitive) that :func:`list_images` treats as images."""
+
+PIXEL_RESAMPLE = Image.Resampling.BILINEAR
+"""Resampling filter for pixels: bilinear, the common choice of image-classifier
+preprocessing. Pillow's bilinear filter widens with the scale when it shrinks an image,
+so downscaling is antialiased."""
+
+MASK_RESAMPLE = Image.Resampling.NEAREST
+"""Resampling filter for masks: nearest neighbour, so a mask stays two-valued."""
+
+PREFETCH_WORKERS: int = 2
+"""Threads that decode ahead when ``iter_records(..., prefetch=N)`` has ``N > 0``.
+Pillow releases the GIL while it decodes and resizes, so two threads overlap decoding
+with the model's work without taking every core."""
+
+_SIXTEEN_BIT_MODES = ("I;16", "I;16L", "I;16B", "I;16N", "I")
+_ALPHA_MODES = ("RGBA", "LA", "PA", "La", "RGBa")
+
+
+# --------------------------------------------------------------------------- values
+
+
+@dataclass(frozen=True, kw_only=True)
+class ImageEntry:
+    """One labelled image on disk, not yet decoded.
+
+    Parameters
+    ----------
+    path : str
+        Relative to the dataset root, ``/`` separators, valid UTF-8 (bytes of the file
+        name that are not UTF-8 appear as ``\\xNN``). For display and JSON.
+    label : str or None
+        Class name; None for an unlabelled image (an empty label in a manifest).
+    file : Path
+        Absolute path on disk (the real name, which may not be UTF-8).
+    mask_file : Path or None
+        Absolute path of the object mask, or None when the image has none.
+
+    Examples
+    --------
+    >>> ImageEntry(path="mug/a.png", label="mug", file=Path("/data/mug/a.png"), mask_file=None).label
+    'mug'
+    """
+
+    path: str
+    label: str | None
+    file: Path
+    mask_file: Path | None
+
+    def __post_init__(self) -> None:
+        if not self.path:
+            raise ValueError("ImageEntry.path must not be empty")
+
+
+@dataclass(frozen=True, kw_only=True)
+class ImageRecord:
+    """One decoded image at the model's input size.
+
+    Parameters
+    ----------
+    path : str
+        As :attr:`ImageEntry.path`.
+    label : str or None
+        As :attr:`ImageEntry.label`.
+    pixels : ndarray, shape (H, W, C), float32
+        Values in 0..255; ``C`` is 3 (RGB) or 1 (gray).
+    mask : ndarray, shape (H, W), bool, or None
+        True where the object is; resized with the same geometry as ``pixels``.
+    """
+
+    path: str
+    label: str | None
+    pixels: np.ndarray
+    mask: np.ndarray | None
+
+    def __post_init__(self) -> None:
+        p = self.pixels
+        if p.ndim != 3 or p.shape[2] not in (1, 3) or p.dtype != np.float32:
+            raise ValueError(
+                f"ImageRecord.pixels must be (H, W, 1|3) float32; got {p.shape} {p.dtype}"
+            )
+        if self.mask is not None and (
+            self.mask.shape != p.shape[:2] or self.mask.dtype != np.bool_
+        ):
+            raise ValueError(
+                f"ImageRecord.mask must be {p.shape[:2]} bool; got {self.mask.shape} {self.mask.dtype}"
+            )
+
+
+@dataclass(frozen=True, kw_only=True)
+class Skip:
+    """An image (or a class folder, path ending in ``/``) left out of the audit, and why.
+
+    Parameters
+    ----------
+    path : str
+        As :attr:`ImageEntry.path`; ``"<class>/"`` for an empty class folder,
+        ``"manifest line N"`` for a manifest row without a usable path.
+    reason : str
+        One line saying what was wrong, e.g. ``"file is empty"``.
+
+    Examples
+    --------
+    >>> Skip(path="mug/a.png", reason="file is empty").reason
+    'file is empty'
+    """
+
+    path: str
+    reason: str
+
+    def __post_init__(self) -> None:
+        if not self.reason or "\n" in self.reason:
+            raise ValueError(f"Skip.reason must be one non-empty line; got {self.reason!r}")
+
+
+# ------------------------------------------------------------------ option checks
+
+
+@dataclass(frozen=True, kw_only=True)
+class _Options:
+    size: tuple[int, int]
+    channels: int
+    resize: str
+    background: tuple[int, int, int]
+
+
+def _check_options(size, channels, resize, background) -> _Options:
+    """Validate the decoding options once, at the entrance; one message per parameter."""
+    if (
+        not isinstance(size, Sequence)
+        or len(size) != 2
+        or not all(isinstance(v, (int, np.integer)) and not isinstance(v, bool) and v > 0 for v in size)
+    ):
+        raise UsageError(
+            f"size must be two positive integers (height, width); got {size!r}. "
+            "Pass e.g. size=(224, 224) or --size 224x224."
+        )
+    if channels not in (1, 3):
+        raise UsageError(
+            f"channels must be 1 (gray) or 3 (RGB); got {channels!r}. Pass channels=1 or channels=3."
+        )
+    if resize not in RESIZE_MODES:
+        raise UsageError(
+            f"resize must be one of {', '.join(RESIZE_MODES)}; got {resize!r}. Pass e.g. resize='stretch'."
+        )
+    if (
+        not isinstance(background, Sequence)
+        or len(background) != 3
+        or not all(isinstance(v, (int, np.integer)) and not isinstance(v, bool) and 0 <= v <= 255 for v in background)
+    ):
+        raise UsageError(
+            f"background must be three integers in 0..255 (R, G, B); got {background!r}. "
+            "Pass e.g. background=(255, 255, 255)."
+        )
+    return _Options(
+        size=(int(size[0]), int(size[1])),
+        channels=int(channels),
+        resize=resize,
+        background=(int(background[0]), int(background[1]), int(background[2])),
+    )
+
+
+# ------------------------------------------------------------------------ decoding
+
+
+def _one_line(text: str) -> str:
+    return " ".join(str(text).split()) or "unknown error"
+
+
+def _bomb_reason(pixels: int, dims: tuple[int, int] | None = None) -> str:
+    shape = f"{dims[0]}x{dims[1]} ({pixels / 1e6:.1f} MP)" if dims else f"{pixels / 1e6:.1f} MP"
+    return f"declared size {shape} exceeds the {MAX_PIXELS / 1e6:.1f} MP limit (decompression bomb guard)"
+
+
+def _decode(file: str | os.PathLike) -> Image.Image:
+    """Open, refuse bombs from the header, decode the first frame, apply EXIF orientation.
+
+    Raises
+    ------
+    ImageSkip
+        For every reason the file cannot give an image. The reason is one line.
+    """
+    try:
+        if os.stat(file).st_size == 0:
+            raise ImageSkip("file is empty")
+    except FileNotFoundError:
+        raise ImageSkip("file not found") from None
+    except OSError as exc:
+        raise ImageSkip(f"cannot read: {_one_line(exc.strerror or exc)}") from None
+    try:
+        with Image.open(file) as im:
+            # Image.open has read only the header. Pillow itself raises above twice its
+            # limit (DecompressionBombError) and warns above it; the check below refuses
+            # at MAX_PIXELS whatever Pillow's global setting or warning filter is.
+            width, height = im.size
+            if width * height > MAX_PIXELS:
+                raise ImageSkip(_bomb_reason(width * height, (width, height)))
+            im.load()  # first frame of an animation: Image.open starts there
+            return ImageOps.exif_transpose(im)  # a copy, detached from the file
+    except ImageSkip:
+        raise
+    except (Image.DecompressionBombError, Image.DecompressionBombWarning) as exc:
+        found = re.search(r"\((\d+) pixels\)", str(exc))
+        raise ImageSkip(_bomb_reason(int(found.group(1))) if found else _one_line(exc)) from None
+    except UnidentifiedImageError:
+        raise ImageSkip("cannot decode: not a recognised image format") from None
+    except IsADirectoryError:
+        raise ImageSkip("cannot read: is a directory, not an image file") from None
+    except PermissionError:
+        raise ImageSkip("cannot read: permission denied") from None
+    except Exception as exc:  # noqa: BLE001 - Pillow's decoders raise many types on bad data
+        raise ImageSkip(f"cannot decode: {_one_line(exc)}") from None
+
+
+def _gray_of(background: tuple[int, int, int]) -> int:
+    """The background as Pillow's own RGB -> L conversion sees it (ITU-R 601-2 luma)."""
+    return Image.new("RGB", (1, 1), background).convert("L").getpixel((0, 0))
+
+
+def _to_working(im: Image.Image, opts: _Options) -> tuple[Image.Image, float | tuple[int, ...]]:
+    """Convert a decoded image to the mode it is resized in, with its padding fill.
+
+    8-bit images become "RGB" or "L" (``opts.channels``); 16-bit images become "F"
+    holding value / 257, so 65535 -> 255 and no precision is lost before the resize.
+    """
+    mode = im.mode
+    if mode in _SIXTEEN_BIT_MODES:
+        values = np.asarray(im).astype(np.float32) / np.float32(257.0)
+        values = np.clip(values, 0.0, 255.0)  # mode "I" is 32-bit: clip values outside 0..65535
+        # A gray image padded for an RGB model needs a coloured pad, which one "F" band
+        # cannot hold: pad with NaN (never a pixel value) and colour it in _to_array.
+        return Image.fromarray(values), (float(_gray_of(opts.background)) if opts.channels == 1 else float("nan"))
+    if mode == "F":
+        raise ImageSkip(
+            "unsupported image: 32-bit float pixels (mode F) have no known value range; "
+            "save it as 8- or 16-bit"
+        )
+    try:
+        if mode in _ALPHA_MODES or "transparency" in im.info:
+            rgba = im.convert("RGBA")
+            ground = Image.new("RGBA", rgba.size, (*opts.background, 255))
+            im = Image.alpha_composite(ground, rgba).convert("RGB")
+        elif mode == "1":
+            im = im.convert("L")
+        elif mode not in ("L", "RGB"):  # CMYK, YCbCr, HSV, LAB, palette without transparency
+            im = im.convert("RGB")
+        if opts.channels == 1 and im.mode != "L":
+            im = im.convert("L")
+        elif opts.channels == 3 and im.mode != "RGB":
+            im = im.convert("RGB")
+    except (ValueError, OSError) as exc:
+        raise ImageSkip(f"unsupported colour mode {mode}: {_one_line(exc)}") from None
+    return im, (_gray_of(opts.background) if opts.channels == 1 else opts.background)
+
+
+def _to_array(im: Image.Image, opts: _Options) -> np.ndarray:
+    arr = np.asarray(im, dtype=np.float32)
+    if arr.ndim == 2:
+        arr = arr[:, :, None]
+    if opts.channels == 3 and arr.shape[2] == 1:
+        pad = np.isnan(arr[:, :, 0])
+        arr = np.repeat(arr, 3, axis=2)
+        arr[pad] = np.asarray(opts.background, dtype=np.float32)
+    return np.ascontiguousarray(arr)
+
+
+def fit(
+    image: Image.Image,
+    size: tuple[int, int],
+    mode: str,
+    *,
+    resample: Image.Resampling = PIXEL_RESAMPLE,
+    fill: float | tuple[int, ...] = 0,
+) -> Image.Image:
+    """Resize an image to ``size`` = (height, width); the one resize for pixels and masks.
+
+    Parameters
+    ----------
+    image : PIL.Image.Image
+        Any mode Pillow can resize ("RGB", "L", "F").
+    size : (int, int)
+        Target (height, width), rows then columns.
+    mode : {"stretch", "crop", "pad"}
+        "stretch" resizes to the target ignoring the aspect ratio. "crop" scales so the
+        shorter side fits and cuts the centre out of the longer side. "pad" scales so the
+        longer side fits and centres the result on ``fill``.
+    resample : PIL.Image.Resampling
+        :data:`PIXEL_RESAMPLE` (bilinear) for pixels, :data:`MASK_RESAMPLE` (nearest)
+        for masks. Pillow's ``reducing_gap`` is off, so the filter is exact.
+    fill : number or tuple
+        Colour of the padding in the image's mode (``mode="pad"`` only).
+
+    Returns
+    -------
+    PIL.Image.Image
+        Same mode, ``size[1]`` wide and ``size[0]`` tall.
+
+    Examples
+    --------
+    >>> fit(Image.new("L", (40, 20)), (20, 20), "pad").size
+    (20, 20)
+    """
+    height, width = size
+    w, h = image.size
+    if mode == "stretch":
+        return image.resize((width, height), resample, reducing_gap=None)
+    if mode == "crop":
+        scale = max(width / w, height / h)
+        box_w, box_h = width / scale, height / scale
+        left, top = (w - box_w) / 2, (h - box_h) / 2
+        box = (left, top, left + box_w, top + box_h)
+        return image.resize((width, height), resample, box=box, reducing_gap=None)
+    if mode == "pad":
+        scale = min(width / w, height / h)
+        new_w = min(width, max(1, round(w * scale)))
+        new_h = min(height, max(1, round(h * scale)))
+        scaled = image.resize((new_w, new_h), resample, reducing_gap=None)
+        canvas = Image.new(image.mode, (width, height), fill)
+        canvas.paste(scaled, ((width - new_w) // 2, (height - new_h) // 2))
+        return canvas
+    raise UsageError(f"resize mode must be one of {', '.join(RESIZE_MODES)}; got {mode!r}.")
+
+
+def _pixels(im: Image.Image, opts: _Options) -> np.ndarray:
+    working, fill = _to_working(im, opts)
+    return _to_array(fit(working, opts.size, opts.resize, fill=fill), opts)
+
+
+def _mask(im: Image.Image, opts: _Options) -> np.ndarray:
+    try:
+        gray = im.convert("L")  # 16-bit values above 255 clip to 255: non-zero stays non-zero
+    except (ValueError, OSError) as exc:
+        raise ImageSkip(f"unsupported colour mode {im.mode}: {_one_line(exc)}") from None
+    fitted = fit(gray, opts.size, opts.resize, resample=MASK_RESAMPLE, fill=0)
+    return np.asarray(fitted) != 0
+
+
+def load_image(
+    file: str | os.PathLike,
+    *,
+    size: tuple[int, int],
+    channels: int = 3,
+    resize: str = "stretch",
+    background: tuple[int, int, int] = (255, 255, 255),
+) -> np.ndarray:
+    """Decode one image safely and bring it to the model's input size.
+
+    Parameters
+    ----------
+    file : str or os.PathLike
+        The image file.
+    size : (int, int)
+        Model input (height, width).
+    channels : {3, 1}
+        3 for RGB (grayscale is repeated), 1 for gray (Pillow's RGB -> L luma).
+    resize : {"stretch", "crop", "pad"}
+        See :func:`fit`.
+    background : (int, int, int)
+        RGB colour that transparent pixels are composited on and that "pad" fills with.
+
+    Returns
+    -------
+    ndarray, shape (H, W, channels), float32
+        Values in 0..255.
+
+    Raises
+    ------
+    ImageSkip
+        With ``reason`` and ``path`` (the file as given), when the file cannot give
+        an image: missing, empty, not an image, truncated, larger
+        than :data:`MAX_PIXELS` (checked from the header, before decoding), or a pixel
+        format without a known value range.
+    UsageError
+        An option has a wrong value.
+
+    Notes
+    -----
+    The EXIF orientation is applied; an animated GIF/PNG or multi-page TIFF gives its
+    first frame; palette, LA and RGBA images are composited on ``background``; 16-bit
+    values are divided by 257 (65535 -> 255); CMYK goes through Pillow's ``convert("RGB")``.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> path = Path(tempfile.mkdtemp()) / "red.png"
+    >>> Image.new("RGB", (4, 2), (255, 0, 0)).save(path)
+    >>> load_image(path, size=(2, 2))[0, 0].tolist()
+    [255.0, 0.0, 0.0]
+    """
+    opts = _check_options(size, channels, resize, background)
+    try:
+        return _pixels(_decode(file), opts)
+    except ImageSkip as exc:
+        raise ImageSkip(exc.reason, _display(os.fsdecode(file))) from None
+
+
+def load_mask(
+    file: str | os.PathLike,
+    *,
+    size: tuple[int, int],
+    resize: str = "stretch",
+) -> np.ndarray:
+    """Decode an object mask: any non-zero pixel (after conversion to gray) is object.
+
+    Parameters
+    ----------
+    file : str or os.PathLike
+        The mask image (any mode; colour masks are converted with Pillow's luma).
+    size : (int, int)
+        Model input (height, width).
+    resize : {"stretch", "crop", "pad"}
+        The same geometry as the pixels (:func:`fit` with nearest neighbour); padding
+        is not object.
+
+    Returns
+    -------
+    ndarray, shape (H, W), bool
+        True where the object is.
+
+    Raises
+    ------
+    ImageSkip
+        As :func:`load_image`.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> path = Path(tempfile.mkdtemp()) / "m.png"
+    >>> Image.fromarray(np.array([[0, 0], [0, 9]], np.uint8)).save(path)
+    >>> load_mask(path, size=(2, 2)).tolist()
+    [[False, False], [False, True]]
+    """
+    opts = _check_options(size, 3, resize, (0, 0, 0))
+    try:
+        return _mask(_decode(file), opts)
+    except ImageSkip as exc:
+        raise ImageSkip(exc.reason, _display(os.fsdecode(file))) from None
+
+
+# ------------------------------------------------------------------------- listing
+
+
+def _display(text: str) -> str:
+    """A file name as valid UTF-8 text: undecodable bytes become ``\\xNN``."""
+    return os.fsencode(text).decode("utf-8", "backslashreplace")
+
+
+def _hidden(name: str) -> bool:
+    return name.startswith(".")
+
+
+def _is_image_name(name: str, extensions: tuple[str, ...]) -> bool:
+    return os.path.splitext(name)[1].lower() in extensions
+
+
+def _walk(
+    folder: Path, parts: tuple[str, ...], root_real: Path, extensions: tuple[str, ...],
+    seen: set[Path],
+) -> Iterator[tuple[tuple[str, ...], Path] | Skip]:
+    """Image files under ``folder`` as (relative name parts, path), and Skips.
+
+    Hidden names (starting with ".") and other extensions are passed over silently.
+    Symlinks are followed while they stay inside ``root_real``; a symlinked folder is
+    entered once (``seen``), so a link loop ends.
+    """
+    try:
+        names = sorted(os.listdir(folder))
+    except OSError as exc:
+        yield Skip(path=_display("/".join(parts)) + "/", reason=f"cannot list folder: {_one_line(exc.strerror or exc)}")
+        return
+    for name in names:
+        if _hidden(name):
+            continue
+        path = folder / name
+        rel = parts + (name,)
+        if path.is_symlink():
+            target = path.resolve()
+            if not target.is_relative_to(root_real):
+                if target.is_dir() or _is_image_name(name, extensions):
+                    suffix = "/" if target.is_dir() else ""
+                    yield Skip(path=_display("/".join(rel)) + suffix, reason="symlink points outside the dataset root")
+                continue
+            if not target.exists():
+                if _is_image_name(name, extensions):
+                    yield Skip(path=_display("/".join(rel)), reason="broken symlink: target does not exist")
+                continue
+        if path.is_dir():
+            real = path.resolve()
+            if real not in seen:
+                seen.add(real)
+                yield from _walk(path, rel, root_real, extensions, seen)
+        elif _is_image_name(name, extensions) and path.is_file():
+            yield rel, path
+
+
+def _check_extensions(extensions) -> tuple[str, ...]:
+    if isinstance(extensions, str) or not all(
+        isinstance(e, str) and e.startswith(".") and len(e) > 1 for e in extensions
+    ):
+        raise UsageError(
+            f"extensions must be a sequence of endings with a leading dot; got {extensions!r}. "
+            "Pass e.g. extensions=('.png', '.jpg')."
+        )
+    return tuple(e.lower() for e in extensions)
+
+
+class _MaskIndex:
+    """Masks in a folder that mirrors the image tree: ``masks/a/b.<ext>`` for ``a/b.jpg``.
+
+    Same stem; ``.png`` is preferred, then the order of ``extensions``.
+    """
+
+    def __init__(self, masks: str | os.PathLike, extensions: tuple[str, ...]):
+        folder = Path(masks).absolute()
+        if not folder.is_dir():
+            raise DataError(
+                f"mask folder '{_display(str(masks))}' does not exist or is not a folder; "
+                "pass a folder that mirrors the image tree (masks/<class>/<stem>.png)."
+            )
+        order = (".png",) + tuple(e for e in extensions if e != ".png")
+        self._by_stem: dict[tuple[str, ...], Path] = {}
+        rank: dict[tuple[str, ...], int] = {}
+        for item in _walk(folder, (), folder.resolve(), order, {folder.resolve()}):
+            if isinstance(item, Skip):
+                continue  # a mask that cannot be used is a missing mask
+            parts, path = item
+            stem, ext = os.path.splitext(parts[-1])
+            key = parts[:-1] + (stem,)
+            r = order.index(ext.lower())
+            if key not in rank or r < rank[key]:
+                rank[key], self._by_stem[key] = r, path
+
+    def find(self, parts: tuple[str, ...]) -> Path | None:
+        return self._by_stem.get(parts[:-1] + (os.path.splitext(parts[-1])[0],))
+
+
+def _cap_per_class(entries: list[ImageEntry], per_class: int | None) -> list[ImageEntry]:
+    entries = sorted(entries, key=lambda e: e.path)
+    if per_class is None:
+        return entries
+    kept: list[ImageEntry] = []
+    counts: dict[str | None, int] = {}
+    for e in entries:
+        counts[e.label] = counts.get(e.label, 0) + 1
+        if counts[e.label] <= per_class:
+            kept.append(e)
+    return kept
+
+
+def _from_folders(
+    root: Path, root_real: Path, extensions: tuple[str, ...], masks: _MaskIndex | None
+) -> tuple[list[ImageEntry], list[Skip]]:
+    entries: list[ImageEntry] = []
+    skips: list[Skip] = []
+    for item in _walk(root, (), root_real, extensions, {root_real}):
+        if isinstance(item, Skip):
+            skips.append(item)
+            continue
+        parts, path = item
+        if len(parts) == 1:
+            skips.append(Skip(
+                path=_display(parts[0]),
+                reason="image is not inside a class folder (expected root/<class>/<image>)",
+            ))
+            continue
+        entries.append(ImageEntry(
+            path=_display("/".join(parts)),
+            label=_display(parts[0]),
+            file=path,
+            mask_file=masks.find(parts) if masks else None,
+        ))
+    labelled = {e.label for e in entries}
+    for name in sorted(os.listdir(root)):
+        if not _hidden(name) and (root / name).is_dir() and _display(name) not in labelled:
+            if (root / name).resolve().is_relative_to(root_real):
+                skips.append(Skip(path=_display(name) + "/", reason="class folder is empty (no image files)"))
+    return entries, skips
+
+
+_MANIFEST_COLUMNS = ("path", "label")
+
+
+def _manifest_path(
+    raw: str, root: Path, root_real: Path
+) -> tuple[tuple[str, ...], Path] | str:
+    """A manifest cell as (parts, absolute path), or the reason it cannot be used."""
+    text = raw.strip().replace("\\", "/")
+    if not text:
+        return "row has an empty path"
+    pure = PurePosixPath(text)
+    if pure.is_absolute() or re.match(r"^[A-Za-z]:", text) or ".." in pure.parts:
+        return "path leaves the dataset root"
+    parts = tuple(p for p in pure.parts if p != ".")
+    path = root.joinpath(*parts)
+    if not path.resolve().is_relative_to(root_real):
+        return "symlink points outside the dataset root"
+    if not path.exists():
+        return "file not found"
+    if not path.is_file():
+        return "not a file"
+    return parts, path
+
+
+def _from_manifest(
+    manifest: str | os.PathLike, root: Path, root_real: Path, masks: _MaskIndex | None
+) -> tuple[list[ImageEntry], list[Skip]]:
+    shown = _display(str(manifest))
+    try:
+        handle = open(manifest, newline="", encoding="utf-8-sig", errors="surrogateescape")
+    except FileNotFoundError:
+        raise DataError(
+            f"manifest '{shown}' does not exist; pass a CSV file with the header path,label[,mask]."
+        ) from None
+    except OSError as exc:
+        raise DataError(f"manifest '{shown}' cannot be read ({_one_line(exc.strerror or exc)}).") from None
+    entries: list[ImageEntry] = []
+    skips: list[Skip] = []
+    first_line: dict[str, int] = {}
+    with handle:
+        reader = csv.reader(handle)
+        try:
+            header = [h.strip().lower() for h in next(reader, [])]
+            missing = [c for c in _MANIFEST_COLUMNS if c not in header]
+            if missing:
+                raise DataError(
+                    f"manifest '{shown}' needs the columns path,label (mask optional); "
+                    f"found: {', '.join(_display(h) for h in header) or 'nothing'}; "
+                    f"missing: {', '.join(missing)}. Add a header row such as path,label."
+                )
+            col = {name: header.index(name) for name in ("path", "label", "mask") if name in header}
+            for row in reader:
+                line = reader.line_num
+                if not any(cell.strip() for cell in row):
+                    continue  # blank line
+                cells = {name: (row[i] if i < len(row) else "") for name, i in col.items()}
+                got = _manifest_path(cells["path"], root, root_real)
+                shown_path = _display(cells["path"].strip().replace("\\", "/")) or f"manifest line {line}"
+                if isinstance(got, str):
+                    skips.append(Skip(path=shown_path, reason=got))
+                    continue
+                parts, path = got
+                rel = _display("/".join(parts))
+                if rel in first_line:
+                    skips.append(Skip(path=rel, reason=f"duplicate row in manifest (first at line {first_line[rel]})"))
+                    continue
+                first_line[rel] = line
+                mask_file = masks.find(parts) if masks else None
+                if cells.get("mask", "").strip():
+                    got_mask = _manifest_path(cells["mask"], root, root_real)
+                    if isinstance(got_mask, str):
+                        skips.append(Skip(path=rel, reason=f"mask: {got_mask}"))
+                        continue
+                    mask_file = got_mask[1]
+                label = cells["label"].strip()
+                entries.append(ImageEntry(
+                    path=rel, label=_display(label) if label else None, file=path, mask_file=mask_file,
+                ))
+        except csv.Error as exc:
+            raise DataError(f"manifest '{shown}' is not valid CSV at line {reader.line_num}: {_one_line(exc)}.") from None
+    return entries, skips
+
+
+def list_images(
+    root: str | os.PathLike,
+    *,
+    manifest: str | os.PathLike | None = None,
+    masks: str | os.PathLike | None = None,
+    per_class: int | None = None,
+    extensions: Sequence[str] = IMAGE_EXTENSIONS,
+) -> tuple[list[ImageEntry], list[Skip]]:
+    """List the labelled images of a dataset, and the files that cannot take part.
+
+    Parameters
+    ----------
+    root : str or os.PathLike
+        The dataset folder. Without ``manifest``, one sub-folder per class
+        (``root/<class>/<image>``); images in nested folders belong to their top class
+        folder, and the folder name is the label.
+    manifest : str or os.PathLike, optional
+        A CSV file with the header ``path,label`` and an optional ``mask`` column; paths
+        relative to ``root``. An empty label means unlabelled (label None). Every file
+        named is tried whatever its extension.
+    masks : str or os.PathLike, optional
+        A folder that mirrors the image tree: the mask of ``root/a/b.jpg`` is
+        ``masks/a/b.<ext>`` (same stem, ``.png`` preferred). An image without a mask
+        gets ``mask_file=None``; that is not a skip. A manifest's ``mask`` cell (relative
+        to ``root``) takes precedence.
+    per_class : int, optional
+        Keep at most this many images per label: the first ones in path order, so the
+        same tree always gives the same selection. Images left out are not Skips.
+    extensions : sequence of str
+        File endings (case-insensitive) taken as images in folder mode.
+
+    Returns
+    -------
+    entries : list of ImageEntry
+        Sorted by path.
+    skips : list of Skip
+        Sorted by path. In folder mode: images directly in ``root``, symlinks that lead
+        outside ``root`` or nowhere, and empty class folders (path ``"<class>/"``, so a
+        class that will not be audited is visible). In manifest mode: paths that leave
+        the root (absolute, with ``..``, or through a symlink), files not found, and
+        duplicate rows (the first row wins). Hidden files and folders (names starting
+        with ".") and other extensions are passed over silently.
+
+    Raises
+    ------
+    DataError
+        ``root``, ``manifest`` or ``masks`` does not exist; the manifest lacks the
+        ``path`` or ``label`` column or is not CSV; no usable image was found.
+    UsageError
+        ``per_class`` is not a positive integer, or ``extensions`` is malformed.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> root = Path(tempfile.mkdtemp())
+    >>> (root / "mug").mkdir()
+    >>> Image.new("RGB", (2, 2)).save(root / "mug" / "a.png")
+    >>> entries, skips = list_images(root)
+    >>> [(e.path, e.label) for e in entries], skips
+    ([('mug/a.png', 'mug')], [])
+    """
+    if per_class is not None and (
+        not isinstance(per_class, (int, np.integer)) or isinstance(per_class, bool) or per_class < 1
+    ):
+        raise UsageError(
+            f"per_class must be a positive integer or None; got {per_class!r}. Pass e.g. per_class=50."
+        )
+    extensions = _check_extensions(extensions)
+    root_path = Path(root).absolute()
+    if not root_path.is_dir():
+        raise DataError(
+            f"image folder '{_display(str(root))}' does not exist or is not a folder; "
+            "pass a folder with one sub-folder per class, or the folder a --manifest is relative to."
+        )
+    try:
+        os.listdir(root_path)
+    except OSError as exc:
+        raise DataError(
+            f"image folder '{_display(str(root))}' cannot be read ({_one_line(exc.strerror or exc)}); "
+            "check its permissions."
+        ) from None
+    root_real = root_path.resolve()
+    mask_index = _MaskIndex(masks, extensions) if masks is not None else None
+    if manifest is None:
+        entries, skips = _from_folders(root_path, root_real, extensions, mask_index)
+    else:
+        entries, skips = _from_manifest(manifest, root_path, root_real, mask_index)
+    if not entries:
+        where = f"manifest '{_display(str(manifest))}'" if manifest is not None else f"'{_display(str(root))}'"
+        hint = (
+            "list existing image files relative to the root in the path column"
+            if manifest is not None
+            else f"put images ({', '.join(extensions)}) in one sub-folder per class"
+        )
+        first = f" ({len(skips)} skipped, first: {skips[0].path}: {skips[0].reason})" if skips else ""
+        raise DataError(f"no usable images found in {where}{first}; {hint}.")
+    return _cap_per_class(entries, per_class), sorted(skips, key=lambda s: s.path)
+
+
+def class_names(entries: Iterable[ImageEntry]) -> tuple[str, ...]:
+    """The sorted unique labels of ``entries`` (unlabelled entries are left out).
+
+    Examples
+    --------
+    >>> e = [ImageEntry(path=p, label=p[:3], file=Path(p), mask_file=None) for p in ("vas/1", "mug/1", "vas/2")]
+    >>> class_names(e)
+    ('mug', 'vas')
+    """
+    return tuple(sorted({e.label for e in entries if e.label is not None}))
+
+
+# ------------------------------------------------------------------------ records
+
+
+def _record(entry: ImageEntry, opts: _Options) -> ImageRecord | Skip:
+    """Decode one entry; every reason it cannot be used becomes a Skip."""
+    try:
+        image = _decode(entry.file)
+        mask = None
+        if entry.mask_file is not None:
+            try:
+                mask_image = _decode(entry.mask_file)
+            except ImageSkip as exc:
+                raise ImageSkip(f"mask: {exc.reason}") from None
+            if mask_image.size != image.size:
+                raise ImageSkip(
+                    "mask: size {}x{} differs from the image's {}x{}; a mask must match its image".format(
+                        *mask_image.size, *image.size
+                    )
+                )
+            mask = _mask(mask_image, opts)
+        return ImageRecord(path=entry.path, label=entry.label, pixels=_pixels(image, opts), mask=mask)
+    except ImageSkip as exc:
+        return Skip(path=entry.path, reason=_one_line(exc.reason))
+
+
+def iter_records(
+    entries: Iterable[ImageEntry],
+    *,
+    size: tuple[int, int],
+    channels: int = 3,
+    resize: str = "stretch",
+    background: tuple[int, int, int] = (255, 255, 255),
+    prefetch: int = 0,
+) -> Iterator[ImageRecord | Skip]:
+    """Decode entries one at a time, in order; a bad image yields a Skip, never raises.
+
+    Parameters
+    ----------
+    entries : iterable of ImageEntry
+        Usually the first result of :func:`list_images`.
+    size, channels, resize, background
+        As :func:`load_image`; masks follow ``size`` and ``resize``.
+    prefetch : int
+        0 decodes in the caller's thread. N > 0 decodes up to N images ahead in
+        :data:`PREFETCH_WORKERS` threads, so decoding overlaps the model's work; the
+        order and the results are the same.
+
+    Yields
+    ------
+    ImageRecord or Skip
+        One per entry, in the order of ``entries``. A mask that cannot be decoded or
+        whose size differs from its image's makes a Skip (reason starting ``"mask: "``).
+
+    Raises
+    ------
+    UsageError
+        An option has a wrong value (raised at the call, before any decoding).
+
+    Examples
+    --------
+    >>> e = ImageEntry(path="gone.png", label="mug", file=Path("/nonexistent/gone.png"), mask_file=None)
+    >>> list(iter_records([e], size=(8, 8)))
+    [Skip(path='gone.png', reason='file not found')]
+    """
+    opts = _check_options(size, channels, resize, background)
+    if not isinstance(prefetch, (int, np.integer)) or isinstance(prefetch, bool) or prefetch < 0:
+        raise UsageError(f"prefetch must be an integer >= 0; got {prefetch!r}. Pass e.g. prefetch=8.")
+    if prefetch == 0:
+        return (_record(entry, opts) for entry in entries)
+    return _prefetched(entries, opts, int(prefetch))
+
+
+def _prefetched(entries: Iterable[ImageEntry], opts: _Options, ahead: int) -> Iterator[ImageRecord | Skip]:
+    pending: deque = deque()
+    pool = ThreadPoolExecutor(max_workers=PREFETCH_WORKERS, thread_name_prefix="decode")
+    try:
+        for entry in entries:
+            if len(pending) >= ahead:
+                yield pending.popleft().result()
+            pending.append(pool.submit(_record, entry, opts))
+        while pending:
+            yield pending.popleft().result()
+    finally:  # also when the caller stops early: drop queued work, do not decode it
+        pool.shutdown(wait=True, cancel_futures=True)

@@ -1,0 +1,241 @@
+"""Rules that turn per-class aggregates into findings, with one table of thresholds.
+
+Each rule compares a class's statistic with an absolute bound *and* with the median
+of the same statistic over the model's other classes, so that a model which is fragile
+everywhere does not get every class flagged. Every finding starts as ``suspect``; the
+counterfactual tests of probes.py make it ``confirmed`` or ``not-confirmed``.
+
+The thresholds live in :data:`THRESHOLD_TABLE`, one line of reason each; the README
+prints the same table. They can be overridden (:meth:`Thresholds.replace_from`) and
+are written into audit.json.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from .classes import ClassSummary, ImageSummary, SMALL_AREA, BOX_MAX_AREA
+from .errors import UsageError
+
+__all__ = [
+    "THRESHOLD_TABLE",
+    "Thresholds",
+    "read_thresholds",
+    "parse_threshold_overrides",
+    "Finding",
+    "FINDING_KINDS",
+    "judge",
+]
+
+FINDING_KINDS = ("localized", "fixed-position", "recurring-motif", "background")
+
+#: name, default, reason. One place for every threshold of the rules.
+THRESHOLD_TABLE: tuple[tuple[str, float, str], ...] = (
+    ("min_correct_images", 5,
+     "a class needs this many correctly predicted images before its rates mean anything"),
+    ("localized_rate", 0.40,
+     "share of a class's correct images whose decision moves when at most 5% of the image is hidden"),
+    ("localized_margin", 0.25,
+     "how far that share must exceed the median of the other classes (a fragile model is not a shortcut)"),
+    ("fixed_agreement", 0.50,
+     "share of a class's correct images whose small decisive boxes cover one common place"),
+    ("fixed_margin", 0.25,
+     "how far that agreement must exceed the median of the other classes"),
+    ("background_share", 0.50,
+     "median share of a class's positive heat that lies outside the object"),
+    ("background_margin", 0.10,
+     "how far that share must exceed the median of the other classes"),
+    ("background_survival", 0.50,
+     "share of a class's correct images still predicted as the class once the object is erased"),
+    ("motif_coverage", 0.30,
+     "share of a class's images whose decisive crops fall in one cluster of near-alike crops"),
+    ("motif_margin", 0.15,
+     "how far a class's small-area rate must exceed the other classes' before its crops are clustered"),
+    ("confirm_alpha", 0.01,
+     "a counterfactual test confirms only below this one-sided p-value"),
+    ("confirm_effect", 0.20,
+     "and only when the test's rate beats its control by at least this much"),
+)
+_NAMES = tuple(name for name, _, _ in THRESHOLD_TABLE)
+
+
+@dataclass(frozen=True, kw_only=True)
+class Thresholds:
+    """The thresholds in force; defaults from :data:`THRESHOLD_TABLE`.
+
+    >>> Thresholds().localized_rate
+    0.4
+    >>> Thresholds.replace_from(Thresholds(), {"localized_rate": 0.5}).localized_rate
+    0.5
+    """
+
+    min_correct_images: int = 5
+    localized_rate: float = 0.40
+    localized_margin: float = 0.25
+    fixed_agreement: float = 0.50
+    fixed_margin: float = 0.25
+    background_share: float = 0.50
+    background_margin: float = 0.10
+    background_survival: float = 0.50
+    motif_coverage: float = 0.30
+    motif_margin: float = 0.15
+    confirm_alpha: float = 0.01
+    confirm_effect: float = 0.20
+
+    def __post_init__(self) -> None:
+        for name in _NAMES:
+            value = getattr(self, name)
+            if isinstance(value, bool) or not isinstance(value, (int, float)):
+                raise UsageError(f"threshold {name} must be a number; got {value!r}.")
+            if name == "min_correct_images":
+                if int(value) != value or value < 1:
+                    raise UsageError(f"threshold min_correct_images must be a whole number >= 1; got {value}.")
+            elif not (0.0 <= float(value) <= 1.0):
+                raise UsageError(f"threshold {name} must be between 0 and 1; got {value}.")
+
+    @staticmethod
+    def replace_from(base: "Thresholds", values: dict) -> "Thresholds":
+        unknown = sorted(set(values) - set(_NAMES))
+        if unknown:
+            raise UsageError(
+                f"unknown threshold {unknown[0]!r}; the thresholds are: {', '.join(_NAMES)}.")
+        clean = {k: (int(v) if k == "min_correct_images" and isinstance(v, (int, float)) and not isinstance(v, bool) else v)
+                 for k, v in values.items()}
+        return dataclasses.replace(base, **clean)
+
+    def to_dict(self) -> dict:
+        return {name: getattr(self, name) for name in _NAMES}
+
+
+def read_thresholds(path: str | Path) -> dict:
+    """Threshold overrides from a TOML file (a ``[thresholds]`` table or top-level keys)."""
+    p = Path(path)
+    try:
+        data = tomllib.loads(p.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise UsageError(f"--thresholds file {p} does not exist; pass the path of a TOML file.") from None
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise UsageError(f"--thresholds file {p} is not valid TOML ({exc}); fix the file.") from None
+    return dict(data.get("thresholds", data))
+
+
+def parse_threshold_overrides(items: list[str]) -> dict:
+    """``["localized_rate=0.5", ...]`` from ``--threshold`` options, as a dict."""
+    out = {}
+    for item in items:
+        name, sep, value = item.partition("=")
+        if not sep:
+            raise UsageError(f"--threshold takes NAME=VALUE (e.g. localized_rate=0.5); got {item!r}.")
+        try:
+            out[name.strip()] = float(value)
+        except ValueError:
+            raise UsageError(f"--threshold {name.strip()} needs a number; got {value!r}.") from None
+    return out
+
+
+@dataclass(frozen=True, kw_only=True)
+class Finding:
+    """One suspicion about one class, with the evidence behind it."""
+
+    id: str
+    class_name: str
+    class_index: int
+    kind: str
+    status: str = "suspect"
+    region: list[float] | None = None
+    evidence: dict = field(default_factory=dict)
+    examples: tuple[str, ...] = ()
+
+    def __post_init__(self) -> None:
+        if self.kind not in FINDING_KINDS:
+            raise UsageError(f"finding kind must be one of {', '.join(FINDING_KINDS)}; got {self.kind!r}.")
+        if self.status not in ("suspect", "confirmed", "not-confirmed"):
+            raise UsageError(f"finding status {self.status!r} is not suspect, confirmed or not-confirmed.")
+
+    def to_dict(self) -> dict:
+        return {"id": self.id, "class": self.class_name, "kind": self.kind, "status": self.status,
+                "region": self.region, "evidence": self.evidence, "examples": list(self.examples)}
+
+
+def _others_median(classes: list[ClassSummary], me: ClassSummary, metric: str) -> float:
+    vals = [c.metrics.get(metric) for c in classes if c.index != me.index]
+    vals = [v for v in vals if v is not None]
+    return float(np.median(vals)) if vals else 0.0
+
+
+def _evidence(statistic: str, value: float, threshold: float, others: float, margin: float, **extra) -> dict:
+    out = {"statistic": statistic, "value": value, "threshold": threshold,
+           "others_median": others, "margin_required": margin}
+    out.update(extra)
+    return out
+
+
+def _overlaps(box: list[float] | None, region: list[float] | None) -> bool:
+    if box is None or region is None:
+        return False
+    return box[0] < region[2] and region[0] < box[2] and box[1] < region[3] and region[1] < box[3]
+
+
+def judge(classes: list[ClassSummary], images: list[ImageSummary], *,
+          thresholds: Thresholds | None = None, max_examples: int = 8) -> list[Finding]:
+    """The suspect findings for each class (``recurring-motif`` is added by the scan).
+
+    Per class, in this order: ``fixed-position`` (which also covers ``localized`` for
+    that class), else ``localized``; then ``background``.
+    """
+    th = thresholds or Thresholds()
+    found: list[Finding] = []
+    for cls in classes:
+        m = cls.metrics
+        if cls.correct < th.min_correct_images:
+            continue
+        mine = [im for im in images if im.label == cls.index and im.correct]
+        small_rate = m["small_area_rate"] or 0.0
+        small_others = _others_median(classes, cls, "small_area_rate")
+        agreement = m["box_agreement"] or 0.0
+        agree_others = _others_median(classes, cls, "box_agreement")
+        if agreement >= th.fixed_agreement and agreement - agree_others >= th.fixed_margin:
+            members = [im for im in mine if im.decisive_box is not None
+                       and _overlaps(im.decisive_box, cls.place_box)]
+            members.sort(key=lambda im: (im.decisive_area, im.path))
+            found.append(Finding(
+                id="", class_name=cls.name, class_index=cls.index, kind="fixed-position",
+                region=cls.place_box,
+                evidence=_evidence("box_agreement", agreement, th.fixed_agreement, agree_others,
+                                   th.fixed_margin, small_area_rate=small_rate,
+                                   images=len(mine), agreeing_images=len(members)),
+                examples=tuple(im.path for im in members[:max_examples])))
+        elif small_rate >= th.localized_rate and small_rate - small_others >= th.localized_margin:
+            members = sorted([im for im in mine if im.small], key=lambda im: (im.decisive_area, im.path))
+            found.append(Finding(
+                id="", class_name=cls.name, class_index=cls.index, kind="localized", region=None,
+                evidence=_evidence("small_area_rate", small_rate, th.localized_rate, small_others,
+                                   th.localized_margin, small_area=SMALL_AREA, images=len(mine),
+                                   flipping_images=len(members),
+                                   median_decisive_area=m["median_decisive_area"]),
+                examples=tuple(im.path for im in members[:max_examples])))
+        share = m.get("median_background_share")
+        survival = m.get("object_erased_survival")
+        if share is not None and survival is not None:
+            share_others = _others_median(classes, cls, "median_background_share")
+            if (share >= th.background_share and share - share_others >= th.background_margin
+                    and survival >= th.background_survival):
+                members = sorted([im for im in mine if im.background_share is not None],
+                                 key=lambda im: (-im.background_share, im.path))
+                found.append(Finding(
+                    id="", class_name=cls.name, class_index=cls.index, kind="background", region=None,
+                    evidence=_evidence("median_background_share", share, th.background_share,
+                                       share_others, th.background_margin,
+                                       object_erased_survival=survival,
+                                       survival_threshold=th.background_survival,
+                                       masked_images=m["masked_images"],
+                                       estimated_masks=m["estimated_masks"],
+                                       mask="estimated" if m["estimated_masks"] == m["masked_images"]
+                                       else ("given" if m["estimated_masks"] == 0 else "given and estimated")),
+                    examples=tuple(im.path for im in members[:max_examples])))
+    return found

@@ -1,0 +1,366 @@
+"""The audit of a labelled image set: ``scan``.
+
+``scan`` lists and decodes the images (dataset.py), runs one job per image through the
+batching engine (heatmap, decisive area, deletion and insertion curves, mask tests),
+keeps each image's results in the store as soon as they exist, then aggregates per
+class, applies the finding rules, looks for recurring motifs, runs the counterfactual
+tests, and writes audit.json (and, through report/, the figures and the report).
+
+An interrupted scan keeps every finished image; the same command resumes it and gives
+the same audit.json.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import os
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable, Sequence
+
+import numpy as np
+
+from . import __version__
+from .classes import ClassAccumulator, ClassSummary, ImageSummary, summarise_classes
+from .dataset import ImageEntry, ImageRecord, Skip, class_names, iter_records, list_images
+from .engine import PassEngine
+from .errors import AuditError, DataError, ImageSkip, UsageError
+from .findings import Finding, Thresholds, judge
+from .model import ModelConfig, OnnxClassifier
+from .occlusion import Fill, GridPlan, Plan, RandomPatchPlan, SmoothMaskPlan
+from .sensitivity import ImageStats, estimate_object_mask, image_job
+from .store import ResultStore, write_json
+
+__all__ = ["ScanSettings", "AuditResult", "scan", "DEFAULT_PLAN", "DEFAULT_FILL", "make_scorer"]
+
+#: 8-pixel patches at stride 4 on a 64-pixel input: 225 passes an image.
+DEFAULT_PLAN = GridPlan(patch=0.125, stride=0.0625)
+DEFAULT_FILL = Fill(kind="mean")
+SCHEMA = 1
+
+
+@dataclass(frozen=True, kw_only=True)
+class ScanSettings:
+    """Everything that decides an audit's numbers (written into audit.json)."""
+
+    plan: Plan = DEFAULT_PLAN
+    fill: Fill = DEFAULT_FILL
+    seed: int = 0
+    score: str = "prob"
+    thresholds: Thresholds = field(default_factory=Thresholds)
+    confirm: bool = True
+    probe_budget: int = 40
+    per_class: int | None = None
+
+    def __post_init__(self) -> None:
+        if self.score not in ("prob", "logit"):
+            raise UsageError(f"--score must be prob or logit; got {self.score!r}.")
+        if not isinstance(self.seed, int) or isinstance(self.seed, bool):
+            raise UsageError(f"--seed must be a whole number; got {self.seed!r}.")
+        if not isinstance(self.probe_budget, int) or self.probe_budget < 4:
+            raise UsageError(f"--probe-budget must be a whole number of at least 4; got {self.probe_budget!r}.")
+        if self.per_class is not None and (not isinstance(self.per_class, int) or self.per_class < 1):
+            raise UsageError(f"--per-class must be a whole number of at least 1; got {self.per_class!r}.")
+        # One seed for everything random: the plan's and the noise fill's follow it.
+        if isinstance(self.plan, (RandomPatchPlan, SmoothMaskPlan)) and self.plan.seed != self.seed:
+            object.__setattr__(self, "plan", dataclasses.replace(self.plan, seed=self.seed))
+        if self.fill.kind == "noise" and self.fill.seed != self.seed:
+            object.__setattr__(self, "fill", dataclasses.replace(self.fill, seed=self.seed))
+
+    def to_dict(self) -> dict:
+        return {"plan": self.plan.to_dict(), "fill": self.fill.to_dict(), "seed": self.seed,
+                "score": self.score, "thresholds": self.thresholds.to_dict(),
+                "confirm": self.confirm, "probe_budget": self.probe_budget,
+                "per_class": self.per_class}
+
+
+@dataclass(frozen=True, kw_only=True)
+class AuditResult:
+    """The outcome of a scan; ``to_dict()`` is audit.json."""
+
+    model: dict
+    dataset: dict
+    settings: ScanSettings
+    classes: list[ClassSummary]
+    findings: list[Finding]
+    images: list[ImageSummary]
+    skipped: list[Skip]
+    run: dict
+    out: Path | None = None
+
+    def to_dict(self) -> dict:
+        labels = self.model.get("labels", [])
+        return {
+            "schema": SCHEMA,
+            "tool_version": __version__,
+            "model": self.model,
+            "dataset": self.dataset,
+            "settings": self.settings.to_dict(),
+            "classes": [{"name": c.name, "images": c.images, "correct": c.correct,
+                         "accuracy": c.accuracy, "mean_confidence": c.mean_confidence,
+                         "place_box": c.place_box, "metrics": c.metrics} for c in self.classes],
+            "findings": [f.to_dict() for f in self.findings],
+            "images": [_image_dict(im, labels) for im in self.images],
+            "skipped": [{"path": s.path, "reason": s.reason} for s in self.skipped],
+            "run": self.run,
+        }
+
+    def at_or_above(self, gate: str) -> list[Finding]:
+        """Findings at or above ``gate`` (``suspect`` < ``confirmed``; ``never`` = none)."""
+        if gate == "never":
+            return []
+        if gate == "suspect":
+            return [f for f in self.findings if f.status in ("suspect", "confirmed")]
+        if gate == "confirmed":
+            return [f for f in self.findings if f.status == "confirmed"]
+        raise UsageError(f"--fail-on must be suspect, confirmed or never; got {gate!r}.")
+
+
+def _image_dict(im: ImageSummary, labels: Sequence[str]) -> dict:
+    d = dataclasses.asdict(im)
+    d["label"] = labels[im.label] if 0 <= im.label < len(labels) else None
+    d["predicted"] = labels[im.predicted] if 0 <= im.predicted < len(labels) else None
+    return d
+
+
+def make_scorer(classifier, score: str) -> Callable[[np.ndarray], np.ndarray]:
+    """The function the engine calls: probabilities, or logits when ``score="logit"``."""
+    if score == "logit":
+        if not hasattr(classifier, "logits"):
+            raise UsageError("--score logit needs a classifier with a logits() method.")
+        return classifier.logits
+    return classifier.predict
+
+
+def _fingerprint(classifier: OnnxClassifier, settings: ScanSettings, masks: Any) -> dict:
+    s = settings.to_dict()
+    # Thresholds and confirmation do not change per-image results: they stay out.
+    for key in ("thresholds", "confirm", "probe_budget", "per_class"):
+        s.pop(key)
+    return {"schema": SCHEMA, "model_sha256": classifier.sha256,
+            "model": _model_description(classifier), "settings": s, "masks": bool(masks)}
+
+
+def _model_description(classifier) -> dict:
+    """What decides the numbers: the machine-dependent batch size and threads stay out."""
+    d = dict(classifier.describe())
+    d.pop("batch_size", None)
+    d.pop("threads", None)
+    return d
+
+
+def _summary_from_record(rec: dict) -> ImageSummary:
+    fields = {f.name for f in dataclasses.fields(ImageSummary)}
+    return ImageSummary(**{k: rec[k] for k in fields if k in rec})
+
+
+def _record_from_stats(path: str, label: int, stats: ImageStats, probs: np.ndarray) -> dict:
+    predicted = int(np.argmax(probs))
+    return {
+        "label": label, "predicted": predicted, "confidence": float(probs[predicted]),
+        "label_score": float(stats.base_scores[stats.target]),
+        "probs": probs, "concentration": stats.concentration, "gini": stats.gini,
+        "decisive_area": stats.decisive_area, "decisive_box": stats.decisive_box,
+        "decisive_score": stats.decisive_score, "peak_box": stats.peak_box,
+        "deletion": stats.deletion, "insertion": stats.insertion,
+        "deletion_area": stats.deletion_area, "insertion_area": stats.insertion_area,
+        "background_share": stats.background_share, "mask_source": stats.mask_source,
+        "survives_object_erased": stats.survives_object_erased,
+        "survives_background_erased": stats.survives_background_erased,
+        "passes": stats.passes,
+    }
+
+
+def _crop(pixels: np.ndarray, box: list[float] | None) -> np.ndarray:
+    if box is None:
+        return np.zeros((0, 0, pixels.shape[2]), np.float32)
+    h, w = pixels.shape[:2]
+    r0, r1 = int(np.floor(box[1] * h)), int(np.ceil(box[3] * h))
+    c0, c1 = int(np.floor(box[0] * w)), int(np.ceil(box[2] * w))
+    return pixels[r0:r1, c0:c1].astype(np.float32)
+
+
+def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *,
+         out: str | os.PathLike | None = None,
+         masks: str | os.PathLike | None = None,
+         manifest: str | os.PathLike | None = None,
+         model_config: ModelConfig | None = None,
+         settings: ScanSettings | None = None,
+         estimate_masks: bool = True,
+         progress: Callable[[dict], None] | None = None,
+         report: bool = True) -> AuditResult:
+    """Audit a labelled image set.
+
+    Parameters
+    ----------
+    images : path
+        The dataset root (one folder per class, or the root a ``manifest`` is relative to).
+    model : path or OnnxClassifier
+    out : path, optional
+        Output folder: audit.json, figures/, report.html and the per-image store
+        ``results/``. Without it nothing is written and nothing resumes.
+    masks : path, optional
+        A folder of object masks mirroring the image tree.
+    manifest : path, optional
+        A CSV ``path,label[,mask]``.
+    model_config : ModelConfig, optional
+        Model options (command line merged over a TOML file).
+    settings : ScanSettings, optional
+    estimate_masks : bool
+        Estimate object masks on plain backdrops where none is given.
+    progress : callable, optional
+        Called with ``{"done", "total", "passes", "passes_per_second", "phase"}``.
+    report : bool
+        Write figures and report.html into ``out``.
+
+    Returns
+    -------
+    AuditResult
+
+    Raises
+    ------
+    UsageError, ModelError, DataError, OutputError
+    """
+    t_start = time.perf_counter()
+    settings = settings or ScanSettings()
+    entries, skipped = list_images(images, manifest=manifest, masks=masks, per_class=settings.per_class)
+    if not entries:
+        raise DataError(f"no usable images under {images}; put images in one folder per class "
+                        f"or pass --manifest.")
+    names = class_names(entries)
+    if isinstance(model, OnnxClassifier):
+        classifier = model
+    else:
+        classifier = OnnxClassifier(model, model_config, dataset_labels=names)
+    label_index = {name: i for i, name in enumerate(classifier.labels)}
+    usable: list[ImageEntry] = []
+    for e in entries:
+        if e.label is None or e.label not in label_index:
+            skipped.append(Skip(path=e.path, reason=(
+                f"label {e.label!r} is not one of the model's labels ({', '.join(classifier.labels)})"
+                if e.label is not None else "no label")))
+        else:
+            usable.append(e)
+    if not usable:
+        raise DataError(
+            f"none of the dataset's labels ({', '.join(names)}) is one of the model's labels "
+            f"({', '.join(classifier.labels)}); pass --labels with the model's class names in output order.")
+
+    out_dir = Path(out) if out is not None else None
+    store = None
+    if out_dir is not None:
+        store = ResultStore(out_dir / "results", _fingerprint(classifier, settings, masks))
+    shape = (classifier.height, classifier.width)
+    scorer = make_scorer(classifier, settings.score)
+    batch = classifier.batch_size
+    todo = [e for e in usable if store is None or not store.has(e.path)]
+    done_count = len(usable) - len(todo)
+    passes_per_image = 1
+    memory: dict[str, tuple[dict, dict]] = {}
+
+    def report_progress(phase: str, engine: PassEngine | None = None) -> None:
+        if progress is not None:
+            progress({"phase": phase, "done": done_count, "total": len(usable),
+                      "passes": engine.stats.passes if engine else 0,
+                      "passes_per_second": engine.stats.passes_per_second if engine else 0.0})
+
+    engine = PassEngine(scorer, batch_size=batch, on_batch=lambda n: report_progress("images", engine))
+
+    def jobs():
+        for rec in iter_records(todo, size=shape, channels=classifier.channels,
+                                resize=classifier.resize, prefetch=8):
+            if isinstance(rec, Skip):
+                yield rec.path, _skip_job(rec.reason)
+                continue
+            mask, source = rec.mask, ("given" if rec.mask is not None else None)
+            if mask is None and estimate_masks:
+                mask = estimate_object_mask(rec.pixels)
+                source = "estimated" if mask is not None else None
+            label = label_index[rec.label]
+            yield rec.path, _scan_job(rec, label, mask, source, settings, batch, classifier)
+
+    report_progress("images", engine)
+    for path, result in engine.run(jobs()):
+        done_count += 1
+        if isinstance(result, ImageSkip):
+            record, arrays = {"skipped": result.reason}, {}
+        elif isinstance(result, AuditError):
+            raise result
+        elif isinstance(result, Exception):
+            record, arrays = {"skipped": f"analysis failed: {type(result).__name__}: {result}"}, {}
+        else:
+            record, arrays = result
+        if store is not None:
+            store.put(path, record, arrays)
+        else:
+            memory[path] = (record, arrays)
+        report_progress("images", engine)
+
+    # Aggregate from the store, image by image.
+    acc = ClassAccumulator(len(classifier.labels), shape)
+    summaries: list[ImageSummary] = []
+    crops: dict[str, np.ndarray] = {}
+    for e in usable:
+        got = store.get(e.path) if store is not None else memory.get(e.path)
+        if got is None:
+            skipped.append(Skip(path=e.path, reason="result missing from the store; rerun the scan"))
+            continue
+        record, arrays = got
+        if "skipped" in record:
+            skipped.append(Skip(path=e.path, reason=record["skipped"]))
+            continue
+        record = dict(record, path=e.path)
+        im = _summary_from_record(record)
+        summaries.append(im)
+        if "heatmap" in arrays:
+            acc.add(im.label, arrays["heatmap"].astype(np.float64))
+        if "crop" in arrays and arrays["crop"].size:
+            crops[e.path] = arrays["crop"]
+    skipped.sort(key=lambda s: s.path)
+    classes = summarise_classes(summaries, classifier.labels, accumulator=acc, shape=shape)
+    findings = judge(classes, summaries, thresholds=settings.thresholds)
+    findings = [dataclasses.replace(f, id=f"F{i + 1}") for i, f in enumerate(findings)]
+
+    elapsed = time.perf_counter() - t_start
+    model_info = {"path": str(classifier.path), "sha256": classifier.sha256,
+                  "input": _model_description(classifier), "labels": list(classifier.labels)}
+    dataset_info = {"root": str(images), "masks": str(masks) if masks else None,
+                    "manifest": str(manifest) if manifest else None,
+                    "listed": len(entries), "audited": len(summaries), "skipped": len(skipped)}
+    result = AuditResult(
+        model=model_info, dataset=dataset_info, settings=settings, classes=classes,
+        findings=findings, images=sorted(summaries, key=lambda s: s.path), skipped=skipped,
+        run={"elapsed_seconds": round(elapsed, 2), "passes_this_run": engine.stats.passes,
+             "passes_per_second": round(engine.stats.passes_per_second, 1),
+             "resumed_images": len(usable) - len(todo), "batch_size": batch,
+             "threads": classifier.config.threads},
+        out=out_dir)
+    if out_dir is not None:
+        write_json(out_dir / "audit.json", result.to_dict())
+        if report:
+            from .report import write_scan_figures
+            write_scan_figures(result, out_dir)
+    return result
+
+
+def _skip_job(reason: str):
+    raise ImageSkip(reason)
+    yield  # pragma: no cover  (makes this a generator)
+
+
+def _scan_job(rec: ImageRecord, label: int, mask, source, settings: ScanSettings, batch: int,
+              classifier):
+    stats: ImageStats = yield from image_job(
+        rec.pixels, plan=settings.plan, fill=settings.fill, target=label, mask=mask,
+        mask_source=source, chunk=batch)
+    if settings.score == "prob":
+        probs = stats.base_scores
+    else:
+        probs = np.asarray(classifier.predict(rec.pixels[None])[0], dtype=np.float32)
+    record = _record_from_stats(rec.path, label, stats, probs)
+    box = stats.decisive_box or stats.peak_box
+    arrays = {"heatmap": stats.heatmap.values.astype(np.float32), "crop": _crop(rec.pixels, box)}
+    if mask is not None:
+        arrays["mask"] = mask
+    return record, arrays
