@@ -134,7 +134,8 @@ def summarise_classes(images: list[ImageSummary], labels: tuple[str, ...], *,
       at most :data:`SMALL_AREA`;
     - ``decisive_rate``: share whose decision moves within the 25% cap at all;
     - ``box_agreement``: the largest share of the class's correctly predicted images
-      whose (small) decisive boxes cover one common pixel; ``place_box`` is where;
+      whose decisive boxes (of small decisive areas only) cover one common pixel;
+      ``place_box`` is where;
     - ``median_decisive_area``, ``mean_concentration``, ``mean_gini``,
       ``mean_deletion_area``, ``mean_insertion_area``;
     - with masks: ``median_background_share``, ``object_erased_survival`` (share of
@@ -149,8 +150,10 @@ def summarise_classes(images: list[ImageSummary], labels: tuple[str, ...], *,
             continue
         right = [im for im in members if im.correct]
         areas = [im.decisive_area for im in right if im.decisive_area is not None]
+        # Only the regions the decision hinges on (small decisive areas) say where a
+        # shortcut sits; a large region is the object or the whole scene.
         boxes = [im.decisive_box for im in right
-                 if im.decisive_box is not None and _box_area(im.decisive_box) <= BOX_MAX_AREA]
+                 if im.small and _box_area(im.decisive_box) <= BOX_MAX_AREA]
         agreement, place_box = None, None
         if right:
             if boxes:

@@ -19,7 +19,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .classes import ClassSummary, ImageSummary, SMALL_AREA, BOX_MAX_AREA
+from .classes import SMALL_AREA, ClassSummary, ImageSummary
 from .errors import UsageError
 
 __all__ = [
@@ -185,8 +185,9 @@ def judge(classes: list[ClassSummary], images: list[ImageSummary], *,
           thresholds: Thresholds | None = None, max_examples: int = 8) -> list[Finding]:
     """The suspect findings for each class (``recurring-motif`` is added by the scan).
 
-    Per class, in this order: ``fixed-position`` (which also covers ``localized`` for
-    that class), else ``localized``; then ``background``.
+    Per class, in this order: ``fixed-position`` (a ``localized`` class whose small
+    decisive regions also agree in place; it stands for both), else ``localized``;
+    then ``background``.
     """
     th = thresholds or Thresholds()
     found: list[Finding] = []
@@ -199,7 +200,8 @@ def judge(classes: list[ClassSummary], images: list[ImageSummary], *,
         small_others = _others_median(classes, cls, "small_area_rate")
         agreement = m["box_agreement"] or 0.0
         agree_others = _others_median(classes, cls, "box_agreement")
-        if agreement >= th.fixed_agreement and agreement - agree_others >= th.fixed_margin:
+        localized = small_rate >= th.localized_rate and small_rate - small_others >= th.localized_margin
+        if localized and agreement >= th.fixed_agreement and agreement - agree_others >= th.fixed_margin:
             members = [im for im in mine if im.decisive_box is not None
                        and _overlaps(im.decisive_box, cls.place_box)]
             members.sort(key=lambda im: (im.decisive_area, im.path))
@@ -210,7 +212,7 @@ def judge(classes: list[ClassSummary], images: list[ImageSummary], *,
                                    th.fixed_margin, small_area_rate=small_rate,
                                    images=len(mine), agreeing_images=len(members)),
                 examples=tuple(im.path for im in members[:max_examples])))
-        elif small_rate >= th.localized_rate and small_rate - small_others >= th.localized_margin:
+        elif localized:
             members = sorted([im for im in mine if im.small], key=lambda im: (im.decisive_area, im.path))
             found.append(Finding(
                 id="", class_name=cls.name, class_index=cls.index, kind="localized", region=None,

@@ -32,7 +32,7 @@ from .occlusion import Fill, GridPlan, Plan, RandomPatchPlan, SmoothMaskPlan
 from .sensitivity import ImageStats, estimate_object_mask, image_job
 from .store import ResultStore, write_json
 
-__all__ = ["ScanSettings", "AuditResult", "scan", "DEFAULT_PLAN", "DEFAULT_FILL", "make_scorer"]
+__all__ = ["ScanSettings", "AuditResult", "scan", "analyse_entries", "DEFAULT_PLAN", "DEFAULT_FILL", "make_scorer"]
 
 #: 8-pixel patches at stride 4 on a 64-pixel input: 225 passes an image.
 DEFAULT_PLAN = GridPlan(patch=0.125, stride=0.0625)
@@ -256,7 +256,6 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
     batch = classifier.batch_size
     todo = [e for e in usable if store is None or not store.has(e.path)]
     done_count = len(usable) - len(todo)
-    passes_per_image = 1
     memory: dict[str, tuple[dict, dict]] = {}
 
     def report_progress(phase: str, engine: PassEngine | None = None) -> None:
@@ -266,31 +265,11 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
                       "passes_per_second": engine.stats.passes_per_second if engine else 0.0})
 
     engine = PassEngine(scorer, batch_size=batch, on_batch=lambda n: report_progress("images", engine))
-
-    def jobs():
-        for rec in iter_records(todo, size=shape, channels=classifier.channels,
-                                resize=classifier.resize, prefetch=8):
-            if isinstance(rec, Skip):
-                yield rec.path, _skip_job(rec.reason)
-                continue
-            mask, source = rec.mask, ("given" if rec.mask is not None else None)
-            if mask is None and estimate_masks:
-                mask = estimate_object_mask(rec.pixels)
-                source = "estimated" if mask is not None else None
-            label = label_index[rec.label]
-            yield rec.path, _scan_job(rec, label, mask, source, settings, batch, classifier)
-
     report_progress("images", engine)
-    for path, result in engine.run(jobs()):
+    for path, record, arrays in analyse_entries(
+            todo, classifier, settings, estimate_masks=estimate_masks, label_index=label_index,
+            engine=engine):
         done_count += 1
-        if isinstance(result, ImageSkip):
-            record, arrays = {"skipped": result.reason}, {}
-        elif isinstance(result, AuditError):
-            raise result
-        elif isinstance(result, Exception):
-            record, arrays = {"skipped": f"analysis failed: {type(result).__name__}: {result}"}, {}
-        else:
-            record, arrays = result
         if store is not None:
             store.put(path, record, arrays)
         else:
@@ -342,6 +321,46 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
             from .report import write_scan_figures
             write_scan_figures(result, out_dir)
     return result
+
+
+def analyse_entries(entries: Sequence[ImageEntry], classifier, settings: ScanSettings, *,
+                    label_index: dict[str, int], estimate_masks: bool = True,
+                    engine: PassEngine | None = None):
+    """Yield ``(path, record, arrays)`` for each entry, in the engine's finishing order.
+
+    This is the per-image half of a scan, the same wherever it runs: decode, estimate a
+    mask where allowed, run the image job through one engine. ``record`` is JSON-able
+    (with ``"skipped"`` for an image that could not be analysed); ``arrays`` holds the
+    heatmap, the decisive crop and the mask. ``AuditError`` other than a skip stops it.
+    ``engine`` defaults to a new one over the classifier (pass one to read its counters).
+    """
+    shape = (classifier.height, classifier.width)
+    batch = classifier.batch_size
+    if engine is None:
+        engine = PassEngine(make_scorer(classifier, settings.score), batch_size=batch)
+
+    def jobs():
+        for rec in iter_records(entries, size=shape, channels=classifier.channels,
+                                resize=classifier.resize, prefetch=8):
+            if isinstance(rec, Skip):
+                yield rec.path, _skip_job(rec.reason)
+                continue
+            mask, source = rec.mask, ("given" if rec.mask is not None else None)
+            if mask is None and estimate_masks:
+                mask = estimate_object_mask(rec.pixels)
+                source = "estimated" if mask is not None else None
+            yield rec.path, _scan_job(rec, label_index[rec.label], mask, source, settings,
+                                      batch, classifier)
+
+    for path, result in engine.run(jobs()):
+        if isinstance(result, ImageSkip):
+            yield path, {"skipped": result.reason}, {}
+        elif isinstance(result, AuditError):
+            raise result
+        elif isinstance(result, Exception):
+            yield path, {"skipped": f"analysis failed: {type(result).__name__}: {result}"}, {}
+        else:
+            yield (path,) + tuple(result)
 
 
 def _skip_job(reason: str):

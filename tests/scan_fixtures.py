@@ -19,13 +19,16 @@ CORNER = 6         # the planted square, in model pixels (top-left)
 CLASSES = ("alpha", "beta", "gamma")
 
 
-def _image(kind: str, rng: np.random.Generator, *, corner: bool, plain: bool) -> tuple[np.ndarray, np.ndarray]:
-    """(rgb uint8 FILE_SIZE^2, object mask bool) for one synthetic item."""
+def _image(kind: str, rng: np.random.Generator, *, corner: bool, plain: bool,
+           bright: bool = False) -> tuple[np.ndarray, np.ndarray]:
+    """(rgb uint8 FILE_SIZE^2, object mask bool) for one synthetic item; ``bright``
+    gives it the brighter backdrop that border_model reads."""
     s = FILE_SIZE
+    level = 215.0 if bright else 150.0
     if plain:
-        img = np.full((s, s, 3), 200.0)
+        img = np.full((s, s, 3), level)
     else:
-        img = 150 + 40 * rng.standard_normal((s, s, 3))
+        img = level + 25 * rng.standard_normal((s, s, 3))
     mask = np.zeros((s, s), bool)
     r0, c0 = rng.integers(12, 22, size=2)
     mask[r0:r0 + 16, c0:c0 + 16] = True
@@ -38,15 +41,20 @@ def _image(kind: str, rng: np.random.Generator, *, corner: bool, plain: bool) ->
 
 
 def make_dataset(root: Path, *, n: int = 8, seed: int = 0, plain: bool = False,
-                 corner_class: str | None = "alpha", masks_root: Path | None = None) -> Path:
-    """root/<class>/<i>.png, and masks mirroring it when ``masks_root`` is given."""
+                 corner_class: str | None = "alpha", backdrop_class: str | None = None,
+                 masks_root: Path | None = None) -> Path:
+    """root/<class>/<i>.png, and masks mirroring it when ``masks_root`` is given.
+
+    ``corner_class`` images carry the bright corner square; ``backdrop_class`` images
+    stand on a brighter backdrop."""
     rng = np.random.default_rng(seed)
     for kind in CLASSES:
         (root / kind).mkdir(parents=True, exist_ok=True)
         if masks_root is not None:
             (masks_root / kind).mkdir(parents=True, exist_ok=True)
         for i in range(n):
-            img, mask = _image(kind, rng, corner=(kind == corner_class), plain=plain)
+            img, mask = _image(kind, rng, corner=(kind == corner_class), plain=plain,
+                               bright=(kind == backdrop_class))
             Image.fromarray(img).save(root / kind / f"{kind}_{i:02d}.png")
             if masks_root is not None:
                 Image.fromarray(mask.astype(np.uint8) * 255).save(masks_root / kind / f"{kind}_{i:02d}.png")
@@ -78,17 +86,18 @@ def corner_model(path: Path) -> Path:
                 metadata={"labels": list(CLASSES)})
 
 
-def clean_model(path: Path) -> Path:
-    """alpha reads grey-ness of the whole image (1 - |R - B|-like, linear proxy: green);
-    no small region carries any class."""
+def clean_model(path: Path, *, scale: float = 1.0) -> Path:
+    """alpha reads the grey-ness of the whole image (G - (R + B) / 2), beta and gamma
+    its colour balance: no small region carries any class. A small ``scale`` makes
+    every decision a near tie, so any small perturbation moves it: a model fragile
+    everywhere, with no shortcut."""
     w = _colour_weights()
     d = SIZE * SIZE
-    # alpha: green-ish grey balance over the whole image: G - (R + B)/2 + a bias
     w[0, d:2 * d] = 8.0 / d
     w[0, 0:d] = -4.0 / d
     w[0, 2 * d:3 * d] = -4.0 / d
     b = np.array([1.0, 0.0, 0.0], np.float32)
-    return save(linear_model(w, b, height=SIZE, width=SIZE), path,
+    return save(linear_model(w * scale, b * scale, height=SIZE, width=SIZE), path,
                 metadata={"labels": list(CLASSES)})
 
 
@@ -101,11 +110,12 @@ def border_model(path: Path) -> Path:
     centre = ~ring
     w = np.zeros((3, 3 * d), np.float32)
     for c in range(3):
-        w[0, c * d:(c + 1) * d] = (ring * (12.0 / (3 * ring.sum()))).ravel()
+        w[0, c * d:(c + 1) * d] = (ring * (24.0 / (3 * ring.sum()))).ravel()
     w[1, 0:d] = (centre * 10.0 / centre.sum()).ravel()
     w[1, 2 * d:] = (centre * -10.0 / centre.sum()).ravel()
     w[2, 0:d] = (centre * -10.0 / centre.sum()).ravel()
     w[2, 2 * d:] = (centre * 10.0 / centre.sum()).ravel()
-    b = np.array([-8.0, 0.0, 0.0], np.float32)
+    b = np.array([-18.0, 0.0, 0.0], np.float32)
     return save(linear_model(w, b, height=SIZE, width=SIZE), path,
                 metadata={"labels": list(CLASSES)})
+

@@ -1,0 +1,421 @@
+"""The command line: thin typer commands over the library.
+
+Each command builds the configuration, calls one library function, writes its output
+and maps errors to exit codes: 0 ran and found nothing at the gate, 1 found something
+at or above ``--fail-on``, 2 a usage or input error (one line: what is wrong and what
+to do), 130 interrupted (finished work kept).
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+import time
+import warnings
+from enum import Enum
+from pathlib import Path
+from typing import Callable, Optional
+
+import typer
+from rich.console import Console
+from rich.progress import (BarColumn, MofNCompleteColumn, Progress, TextColumn,
+                           TimeElapsedColumn, TimeRemainingColumn)
+from rich.table import Table
+
+from . import __version__
+from .errors import AuditError, UsageError
+from .findings import Thresholds, parse_threshold_overrides, read_thresholds
+from .model import ModelConfig, parse_numbers, parse_size, read_labels, read_model_config
+from .occlusion import Fill, GridPlan, RandomPatchPlan, SmoothMaskPlan
+
+app = typer.Typer(
+    name="shortcut-audit",
+    help="Audit an image classifier (ONNX, CPU) for shortcuts: does it predict from the "
+         "object, or from a mark, a sticker or a backdrop?",
+    no_args_is_help=True,
+    add_completion=False,
+    rich_markup_mode="rich",
+)
+err = Console(stderr=True)
+out = Console()
+
+
+class Layout(str, Enum):
+    nchw = "nchw"
+    nhwc = "nhwc"
+
+
+class Channels(str, Enum):
+    rgb = "rgb"
+    bgr = "bgr"
+    gray = "gray"
+
+
+class Resize(str, Enum):
+    stretch = "stretch"
+    crop = "crop"
+    pad = "pad"
+
+
+class OutputKind(str, Enum):
+    probs = "probs"
+    logits = "logits"
+    sigmoid = "sigmoid"
+
+
+class PlanKind(str, Enum):
+    grid = "grid"
+    random = "random"
+    rise = "rise"
+
+
+class FillKind(str, Enum):
+    mean = "mean"
+    blur = "blur"
+    constant = "constant"
+    noise = "noise"
+
+
+class Score(str, Enum):
+    prob = "prob"
+    logit = "logit"
+
+
+class ScanGate(str, Enum):
+    suspect = "suspect"
+    confirmed = "confirmed"
+    never = "never"
+
+
+class CompareGate(str, Enum):
+    new = "new"
+    persists = "persists"
+    never = "never"
+
+
+# ----------------------------------------------------------------- shared options
+
+MODEL_HELP = "Model options"
+PLAN_HELP = "Occlusion options"
+
+LabelsOpt = typer.Option(None, "--labels", help="Class names, one a line, in output order.",
+                         exists=True, dir_okay=False, rich_help_panel=MODEL_HELP)
+ConfigOpt = typer.Option(None, "--model-config", help="TOML file with any of the model options.",
+                         exists=True, dir_okay=False, rich_help_panel=MODEL_HELP)
+LayoutOpt = typer.Option(None, "--layout", help="Input layout (default: read from the graph).",
+                         rich_help_panel=MODEL_HELP)
+SizeOpt = typer.Option(None, "--size", help="Input size HxW, e.g. 224x224 (for dynamic graphs).",
+                       rich_help_panel=MODEL_HELP)
+ScaleOpt = typer.Option(None, "--scale", help="Multiply pixels (0..255) by this first [default: 1/255].",
+                        rich_help_panel=MODEL_HELP)
+MeanOpt = typer.Option(None, "--mean", help="Subtract after --scale: one number or R,G,B.",
+                       rich_help_panel=MODEL_HELP)
+StdOpt = typer.Option(None, "--std", help="Divide after --mean: one number or R,G,B.",
+                      rich_help_panel=MODEL_HELP)
+ChannelsOpt = typer.Option(None, "--channels", help="Channel order the model expects.",
+                           rich_help_panel=MODEL_HELP)
+ResizeOpt = typer.Option(None, "--resize", help="How images reach the input size [default: stretch].",
+                         rich_help_panel=MODEL_HELP)
+OutputOpt = typer.Option(None, "--output", help="What the model outputs [default: detected].",
+                         rich_help_panel=MODEL_HELP)
+ThreadsOpt = typer.Option(None, "--threads", min=1, help="onnxruntime threads [default: all cores].",
+                          rich_help_panel=MODEL_HELP)
+BatchOpt = typer.Option(None, "--batch-size", min=1, help="Images per model call [default: measured].",
+                        rich_help_panel=MODEL_HELP)
+
+
+def model_config(labels, config, layout, size, scale, mean, std, channels, resize, output,
+                 threads, batch_size) -> ModelConfig:
+    """Command-line model options merged over a --model-config file."""
+    given = ModelConfig(
+        labels=read_labels(labels) if labels else None,
+        layout=layout.value if layout else None,
+        size=parse_size(size) if size else None,
+        scale=scale,
+        mean=parse_numbers(mean, name="--mean") if mean else None,
+        std=parse_numbers(std, name="--std") if std else None,
+        channels=channels.value if channels else None,
+        resize=resize.value if resize else None,
+        output=output.value if output else None,
+        threads=threads,
+        batch_size=batch_size,
+    )
+    if config is not None:
+        return given.merged_over(read_model_config(config))
+    return given
+
+
+def _size_value(text: str | None, name: str):
+    if text is None:
+        return None
+    try:
+        return float(text) if "." in text else int(text)
+    except ValueError:
+        raise UsageError(f"{name} takes pixels (8) or a fraction of the side (0.125); got {text!r}.") from None
+
+
+def build_plan(plan: PlanKind, patch, stride, count, min_size, max_size, cells, keep, seed):
+    """The occlusion plan from command-line options."""
+    if plan == PlanKind.grid:
+        return GridPlan(patch=_size_value(patch, "--patch") or 0.125,
+                        stride=_size_value(stride, "--stride") if stride else (None if patch else 0.0625))
+    if plan == PlanKind.random:
+        return RandomPatchPlan(count=count or 400, min_size=_size_value(min_size, "--min-size") or 0.08,
+                               max_size=_size_value(max_size, "--max-size") or 0.25, seed=seed)
+    return SmoothMaskPlan(count=count or 1000, cells=cells, keep=keep, seed=seed)
+
+
+def _fail(exc: BaseException) -> None:
+    err.print(f"[bold red]error:[/] {exc}", highlight=False, markup=True, soft_wrap=True)
+    raise typer.Exit(code=2)
+
+
+def guarded(fn: Callable) -> Callable:
+    """Map AuditError to exit 2 with its one line; keep tracebacks for real bugs."""
+    import functools
+
+    @functools.wraps(fn)
+    def wrapper(*args, **kwargs):
+        try:
+            with warnings.catch_warnings():
+                # Pillow's bomb warning is already turned into a listed skip.
+                warnings.filterwarnings("ignore", message=".*decompression bomb.*")
+                return fn(*args, **kwargs)
+        except AuditError as exc:
+            _fail(exc)
+    return wrapper
+
+
+class _Bar:
+    """A rich progress bar fed by the library's progress callback."""
+
+    def __init__(self, description: str):
+        self.progress = Progress(
+            TextColumn("[bold]{task.description}"), BarColumn(), MofNCompleteColumn(),
+            TextColumn("{task.fields[rate]}"), TimeElapsedColumn(), TextColumn("left"),
+            TimeRemainingColumn(), console=err, transient=False)
+        self.description = description
+        self.task = None
+
+    def __enter__(self):
+        self.progress.__enter__()
+        return self
+
+    def __exit__(self, *exc):
+        self.progress.__exit__(*exc)
+
+    def __call__(self, event: dict) -> None:
+        desc = f"{self.description} {event.get('phase', '')}".strip()
+        if self.task is None:
+            self.task = self.progress.add_task(desc, total=event.get("total", 0), rate="")
+        rate = event.get("passes_per_second") or 0.0
+        self.progress.update(self.task, description=desc, total=event.get("total", 0),
+                             completed=event.get("done", 0),
+                             rate=f"{rate:,.0f} passes/s" if rate else "")
+
+
+# ------------------------------------------------------------------- commands
+
+@app.command()
+@guarded
+def inspect(
+    model: Path = typer.Argument(..., help="The .onnx file.", exists=True, dir_okay=False),
+    labels: Optional[Path] = LabelsOpt, config: Optional[Path] = ConfigOpt,
+    layout: Optional[Layout] = LayoutOpt, size: Optional[str] = SizeOpt,
+    scale: Optional[float] = ScaleOpt, mean: Optional[str] = MeanOpt, std: Optional[str] = StdOpt,
+    channels: Optional[Channels] = ChannelsOpt, resize: Optional[Resize] = ResizeOpt,
+    output: Optional[OutputKind] = OutputOpt, threads: Optional[int] = ThreadsOpt,
+    batch_size: Optional[int] = BatchOpt,
+    as_json: bool = typer.Option(False, "--json", help="Print JSON instead of a table."),
+):
+    """What the tool understood of a model, a test forward pass, and its speed.
+
+    [bold]Examples[/]
+
+      shortcut-audit inspect model.onnx
+
+      shortcut-audit inspect model.onnx --size 224x224 --mean 0.485,0.456,0.406 --std 0.229,0.224,0.225
+    """
+    from .model import OnnxClassifier
+
+    cfg = model_config(labels, config, layout, size, scale, mean, std, channels, resize, output,
+                       threads, batch_size)
+    clf = OnnxClassifier(model, cfg)
+    info = clf.describe()
+    info["passes_per_second"] = round(clf.measure_throughput(seconds=1.0), 1)
+    if as_json:
+        out.print_json(json.dumps(info))
+        return
+    table = Table(title=f"{model.name}", show_header=False)
+    inp = info["input"]
+    rows = [
+        ("input", f"{inp['name']}  {inp['layout'].upper()}  {inp['size'][0]}x{inp['size'][1]}  "
+                  f"{inp['channels']} channel(s), {inp['color']}, {inp['dtype']}"),
+        ("batch", "dynamic" if inp["dynamic_batch"] else f"fixed at {inp['fixed_batch']}"),
+        ("preprocessing", f"x * {inp['scale']:.6g}, mean {inp['mean']}, std {inp['std']}, resize {inp['resize']}"),
+        ("output", f"{info['output']['name']}: {info['output']['kind']}, {info['output']['n_classes']} classes"),
+        ("labels", ", ".join(info["labels"])),
+        ("batch size", str(info["batch_size"])),
+        ("speed", f"{info['passes_per_second']:,.0f} passes/s (random inputs, this machine)"),
+        ("sha256", info["sha256"]),
+    ]
+    for k, v in rows:
+        table.add_row(k, v)
+    out.print(table)
+
+
+@app.command()
+@guarded
+def heatmap(
+    image: Path = typer.Argument(..., help="One image file.", exists=True, dir_okay=False),
+    model: Path = typer.Option(..., "--model", "-m", help="The .onnx file.", exists=True, dir_okay=False),
+    out_dir: Path = typer.Option(..., "--out", "-o", help="Output folder.", file_okay=False),
+    target: Optional[str] = typer.Option(None, "--target", help="Class to explain (name) [default: the prediction]."),
+    plan: PlanKind = typer.Option(PlanKind.grid, "--plan", help="Where to hide.", rich_help_panel=PLAN_HELP),
+    patch: Optional[str] = typer.Option(None, "--patch", help="Patch side: pixels (8) or fraction (0.125).", rich_help_panel=PLAN_HELP),
+    stride: Optional[str] = typer.Option(None, "--stride", help="Grid step [default: half the patch].", rich_help_panel=PLAN_HELP),
+    count: Optional[int] = typer.Option(None, "--count", help="Patches or masks (random, rise).", rich_help_panel=PLAN_HELP),
+    min_size: Optional[str] = typer.Option(None, "--min-size", rich_help_panel=PLAN_HELP, help="Smallest random patch."),
+    max_size: Optional[str] = typer.Option(None, "--max-size", rich_help_panel=PLAN_HELP, help="Largest random patch."),
+    cells: int = typer.Option(8, "--cells", help="RISE grid cells per side.", rich_help_panel=PLAN_HELP),
+    keep: float = typer.Option(0.5, "--keep", help="RISE keep probability.", rich_help_panel=PLAN_HELP),
+    fill: FillKind = typer.Option(FillKind.mean, "--fill", help="What hidden pixels become.", rich_help_panel=PLAN_HELP),
+    fill_value: float = typer.Option(127.5, "--fill-value", help="Value for --fill constant (0..255).", rich_help_panel=PLAN_HELP),
+    seed: int = typer.Option(0, "--seed", help="Seed of everything random.", rich_help_panel=PLAN_HELP),
+    score: Score = typer.Option(Score.prob, "--score", help="Score whose drop is mapped.", rich_help_panel=PLAN_HELP),
+    labels: Optional[Path] = LabelsOpt, config: Optional[Path] = ConfigOpt,
+    layout: Optional[Layout] = LayoutOpt, size: Optional[str] = SizeOpt,
+    scale: Optional[float] = ScaleOpt, mean: Optional[str] = MeanOpt, std: Optional[str] = StdOpt,
+    channels: Optional[Channels] = ChannelsOpt, resize: Optional[Resize] = ResizeOpt,
+    output: Optional[OutputKind] = OutputOpt, threads: Optional[int] = ThreadsOpt,
+    batch_size: Optional[int] = BatchOpt,
+):
+    """The occlusion heatmap of one image: heatmap.npy, overlay.png, heatmap.json.
+
+    [bold]Examples[/]
+
+      shortcut-audit heatmap photo.png --model model.onnx --out hm/
+
+      shortcut-audit heatmap photo.png -m model.onnx -o hm/ --patch 16 --stride 8 --target vase
+
+      shortcut-audit heatmap photo.png -m model.onnx -o hm/ --plan rise --count 2000
+    """
+    from .heatmap import run_heatmap
+
+    cfg = model_config(labels, config, layout, size, scale, mean, std, channels, resize, output,
+                       threads, batch_size)
+    the_plan = build_plan(plan, patch, stride, count, min_size, max_size, cells, keep, seed)
+    the_fill = Fill(kind=fill.value, value=fill_value, seed=seed)
+    with _Bar("heatmap") as bar:
+        result = run_heatmap(image, model, out=out_dir, model_config=cfg, plan=the_plan,
+                             fill=the_fill, target=target, score=score.value, progress=bar)
+    out.print(f"class [bold]{result['target']}[/] score {result['base_score']:.3f}; "
+              f"{result['passes']} passes in {result['elapsed_seconds']:.2f} s")
+    out.print(f"wrote {out_dir / 'overlay.png'}", highlight=False)
+
+
+@app.command()
+@guarded
+def scan(
+    images: Path = typer.Argument(..., help="Dataset folder: one sub-folder per class (or the root of --manifest).",
+                                  exists=True, file_okay=False),
+    model: Path = typer.Option(..., "--model", "-m", help="The .onnx file.", exists=True, dir_okay=False),
+    out_dir: Path = typer.Option(..., "--out", "-o", help="Output folder (created; resumes if it holds results).",
+                                 file_okay=False),
+    masks: Optional[Path] = typer.Option(None, "--masks", help="Object masks, a folder mirroring the images.",
+                                         exists=True, file_okay=False),
+    manifest: Optional[Path] = typer.Option(None, "--manifest", help="CSV with path,label[,mask].",
+                                            exists=True, dir_okay=False),
+    per_class: Optional[int] = typer.Option(None, "--per-class", min=1, help="At most this many images a class."),
+    plan: PlanKind = typer.Option(PlanKind.grid, "--plan", help="Where to hide.", rich_help_panel=PLAN_HELP),
+    patch: Optional[str] = typer.Option(None, "--patch", help="Patch side: pixels (8) or fraction (0.125).", rich_help_panel=PLAN_HELP),
+    stride: Optional[str] = typer.Option(None, "--stride", help="Grid step [default: half the patch].", rich_help_panel=PLAN_HELP),
+    count: Optional[int] = typer.Option(None, "--count", help="Patches or masks (random, rise).", rich_help_panel=PLAN_HELP),
+    min_size: Optional[str] = typer.Option(None, "--min-size", rich_help_panel=PLAN_HELP, help="Smallest random patch."),
+    max_size: Optional[str] = typer.Option(None, "--max-size", rich_help_panel=PLAN_HELP, help="Largest random patch."),
+    cells: int = typer.Option(8, "--cells", help="RISE grid cells per side.", rich_help_panel=PLAN_HELP),
+    keep: float = typer.Option(0.5, "--keep", help="RISE keep probability.", rich_help_panel=PLAN_HELP),
+    fill: FillKind = typer.Option(FillKind.mean, "--fill", help="What hidden pixels become.", rich_help_panel=PLAN_HELP),
+    fill_value: float = typer.Option(127.5, "--fill-value", help="Value for --fill constant (0..255).", rich_help_panel=PLAN_HELP),
+    seed: int = typer.Option(0, "--seed", help="Seed of everything random.", rich_help_panel=PLAN_HELP),
+    score: Score = typer.Option(Score.prob, "--score", help="Score whose drop is mapped.", rich_help_panel=PLAN_HELP),
+    confirm: bool = typer.Option(True, "--confirm/--no-confirm", help="Run the counterfactual tests on suspects."),
+    probe_budget: int = typer.Option(40, "--probe-budget", min=4, help="Images per counterfactual test."),
+    thresholds_file: Optional[Path] = typer.Option(None, "--thresholds", help="TOML file of threshold overrides.",
+                                                   exists=True, dir_okay=False),
+    threshold: list[str] = typer.Option([], "--threshold", help="Override one threshold: NAME=VALUE (repeatable)."),
+    no_estimate: bool = typer.Option(False, "--no-estimate-masks", help="Do not estimate masks on plain backdrops."),
+    no_report: bool = typer.Option(False, "--no-report", help="Write audit.json only (no figures, no HTML)."),
+    fail_on: ScanGate = typer.Option(ScanGate.confirmed, "--fail-on", help="Exit 1 when a finding is at least this."),
+    labels: Optional[Path] = LabelsOpt, config: Optional[Path] = ConfigOpt,
+    layout: Optional[Layout] = LayoutOpt, size: Optional[str] = SizeOpt,
+    scale: Optional[float] = ScaleOpt, mean: Optional[str] = MeanOpt, std: Optional[str] = StdOpt,
+    channels: Optional[Channels] = ChannelsOpt, resize: Optional[Resize] = ResizeOpt,
+    output: Optional[OutputKind] = OutputOpt, threads: Optional[int] = ThreadsOpt,
+    batch_size: Optional[int] = BatchOpt,
+):
+    """Audit a labelled image set: audit.json, report.html, figures, per-image results.
+
+    [bold]Examples[/]
+
+      shortcut-audit scan photos/ --model model.onnx --out audit/
+
+      shortcut-audit scan photos/ -m model.onnx -o audit/ --masks masks/ --fail-on suspect
+
+      shortcut-audit scan photos/ -m model.onnx -o audit/ --threshold localized_rate=0.5 --per-class 50
+
+    An interrupted scan keeps what it finished: run the same command again to resume.
+    """
+    from .scan import ScanSettings, scan as run_scan
+
+    cfg = model_config(labels, config, layout, size, scale, mean, std, channels, resize, output,
+                       threads, batch_size)
+    overrides = read_thresholds(thresholds_file) if thresholds_file else {}
+    overrides.update(parse_threshold_overrides(threshold))
+    settings = ScanSettings(
+        plan=build_plan(plan, patch, stride, count, min_size, max_size, cells, keep, seed),
+        fill=Fill(kind=fill.value, value=fill_value, seed=seed), seed=seed, score=score.value,
+        thresholds=Thresholds.replace_from(Thresholds(), overrides), confirm=confirm,
+        probe_budget=probe_budget, per_class=per_class)
+    try:
+        with _Bar("scan") as bar:
+            result = run_scan(images, model, out=out_dir, masks=masks, manifest=manifest,
+                              model_config=cfg, settings=settings, estimate_masks=not no_estimate,
+                              progress=bar, report=not no_report)
+    except KeyboardInterrupt:
+        kept = len(list((out_dir / "results").glob("*.npz"))) if (out_dir / "results").exists() else 0
+        err.print(f"interrupted: the results of {kept} images are kept in {out_dir / 'results'}; "
+                  f"run the same command again to resume.", highlight=False)
+        raise typer.Exit(code=130)
+    print_summary(result)
+    if not no_report and (out_dir / "report.html").exists():
+        out.print(f"report: {out_dir / 'report.html'}", highlight=False)
+    out.print(f"audit:  {out_dir / 'audit.json'}", highlight=False)
+    if result.at_or_above(fail_on.value):
+        raise typer.Exit(code=1)
+
+
+def print_summary(result) -> None:
+    """The per-class verdict table of an audit."""
+    table = Table(title="per-class verdict")
+    for col in ("class", "images", "accuracy", "confidence", "findings"):
+        table.add_column(col)
+    by_class: dict[str, list] = {}
+    for f in result.findings:
+        by_class.setdefault(f.class_name, []).append(f)
+    for c in result.classes:
+        fs = by_class.get(c.name, [])
+        text = "; ".join(f"{f.id} {f.kind} ({f.status})" for f in fs) or "none"
+        table.add_row(c.name, str(c.images), f"{c.accuracy:.0%}", f"{c.mean_confidence:.2f}", text)
+    out.print(table)
+    if result.skipped:
+        out.print(f"{len(result.skipped)} file(s) skipped; reasons in audit.json", highlight=False)
+
+
+def main() -> None:
+    """Console entry point."""
+    app()
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()

@@ -1,0 +1,88 @@
+"""One image's heatmap, written to a folder: the library side of ``shortcut-audit heatmap``."""
+
+from __future__ import annotations
+
+import os
+import time
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+
+from .dataset import load_image
+from .engine import PassEngine
+from .errors import ImageSkip, UsageError
+from .model import ModelConfig, OnnxClassifier
+from .occlusion import Fill, GridPlan, Plan, pass_count
+from .scan import DEFAULT_FILL, DEFAULT_PLAN, make_scorer
+from .sensitivity import heatmap_job, peak_box
+from .store import write_bytes_atomic, write_json
+
+__all__ = ["run_heatmap"]
+
+
+def run_heatmap(image: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *,
+                out: str | os.PathLike, model_config: ModelConfig | None = None,
+                plan: Plan = DEFAULT_PLAN, fill: Fill = DEFAULT_FILL, target: str | int | None = None,
+                score: str = "prob", progress: Callable[[dict], None] | None = None) -> dict:
+    """Compute one image's occlusion heatmap and write heatmap.npy, overlay.png, heatmap.json.
+
+    Parameters
+    ----------
+    image : path
+    model : path or OnnxClassifier
+    out : path
+        Folder for the three files (created).
+    target : str or int, optional
+        Class name or index to explain; the model's prediction when omitted.
+
+    Returns
+    -------
+    dict
+        The content of heatmap.json.
+
+    Raises
+    ------
+    UsageError, ModelError, ImageSkip (the image cannot be decoded), OutputError
+    """
+    t0 = time.perf_counter()
+    clf = model if isinstance(model, OnnxClassifier) else OnnxClassifier(model, model_config)
+    pixels = load_image(image, size=(clf.height, clf.width), channels=clf.channels, resize=clf.resize)
+    t_index = None
+    if target is not None:
+        if isinstance(target, int) or (isinstance(target, str) and target.isdigit() and target not in clf.labels):
+            t_index = int(target)
+        elif target in clf.labels:
+            t_index = clf.labels.index(target)
+        else:
+            raise UsageError(f"--target {target!r} is not one of the model's labels "
+                             f"({', '.join(clf.labels)}); pass one of them.")
+        if not 0 <= t_index < clf.n_classes:
+            raise UsageError(f"--target {t_index} is out of range for {clf.n_classes} classes.")
+    total = pass_count(plan, clf.height, clf.width) + 1
+    engine = PassEngine(make_scorer(clf, score), batch_size=clf.batch_size,
+                        on_batch=lambda n: progress and progress(
+                            {"phase": "passes", "done": engine.stats.passes, "total": total,
+                             "passes_per_second": engine.stats.passes_per_second}))
+    results = list(engine.run([(0, heatmap_job(pixels, plan=plan, fill=fill, target=t_index,
+                                                chunk=clf.batch_size))]))
+    hm = results[0][1]
+    if isinstance(hm, Exception):
+        raise hm
+    elapsed = time.perf_counter() - t0
+    out_dir = Path(out)
+    from .report.figures import heatmap_overlay_png
+    buf = __import__("io").BytesIO()
+    np.save(buf, hm.values.astype(np.float32))
+    write_bytes_atomic(out_dir / "heatmap.npy", buf.getvalue())
+    label = clf.labels[hm.target]
+    write_bytes_atomic(out_dir / "overlay.png", heatmap_overlay_png(
+        pixels, hm.values, title=f"{Path(image).name}: {label} ({hm.base_score:.3f})",
+        box=peak_box(hm.values)))
+    info = {"image": str(image), "model": clf.path.name, "model_sha256": clf.sha256,
+            "target": label, "target_index": hm.target, "predicted": clf.labels[hm.predicted],
+            "base_score": hm.base_score, "score": score, "plan": plan.to_dict(), "fill": fill.to_dict(),
+            "seed": getattr(plan, "seed", fill.seed), "passes": hm.passes, "coverage": hm.coverage,
+            "size": [clf.height, clf.width], "elapsed_seconds": round(elapsed, 3)}
+    write_json(out_dir / "heatmap.json", info)
+    return info

@@ -1,0 +1,97 @@
+"""Tests of cli.py: exit codes, one-line errors, written files, help with examples."""
+
+import json
+
+import numpy as np
+import pytest
+from typer.testing import CliRunner
+
+import shortcut_audit
+from scan_fixtures import corner_model, make_dataset
+from shortcut_audit.cli import app
+
+runner = CliRunner()
+
+
+@pytest.fixture(scope="module")
+def setup(tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("cli")
+    data = make_dataset(tmp / "data", n=6)
+    model = corner_model(tmp / "m.onnx")
+    return tmp, data, model
+
+
+def test_public_api_is_guarded():
+    # every name in __all__ exists; the list is what the README documents
+    for name in shortcut_audit.__all__:
+        assert hasattr(shortcut_audit, name), name
+    assert {"scan", "OnnxClassifier", "GridPlan", "Fill", "AuditError"} <= set(shortcut_audit.__all__)
+
+
+@pytest.mark.parametrize("command", ["inspect", "heatmap", "scan"])
+def test_help_has_examples(command):
+    result = runner.invoke(app, [command, "--help"])
+    assert result.exit_code == 0
+    assert "Examples" in result.output and f"shortcut-audit {command}" in result.output
+
+
+def test_inspect(setup):
+    tmp, data, model = setup
+    result = runner.invoke(app, ["inspect", str(model), "--json"])
+    assert result.exit_code == 0, result.output
+    info = json.loads(result.output)
+    assert info["input"]["size"] == [32, 32] and info["labels"] == ["alpha", "beta", "gamma"]
+    assert info["output"]["kind"] == "logits" and info["passes_per_second"] > 0
+
+
+def test_heatmap_writes_three_files(setup):
+    tmp, data, model = setup
+    out = tmp / "hm"
+    result = runner.invoke(app, ["heatmap", str(data / "alpha" / "alpha_00.png"), "-m", str(model),
+                                 "-o", str(out), "--patch", "4", "--stride", "2"])
+    assert result.exit_code == 0, result.output
+    hm = np.load(out / "heatmap.npy")
+    assert hm.shape == (32, 32) and hm.dtype == np.float32
+    info = json.loads((out / "heatmap.json").read_text())
+    assert info["target"] == "alpha" and info["plan"] == {"kind": "grid", "patch": 4, "stride": 2}
+    # 15 x 15 patches of 4 at stride 2 on 32 pixels, plus the unperturbed pass
+    assert info["passes"] == 226
+    assert (out / "overlay.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    # the planted corner is where the heat is
+    assert hm[:6, :6].mean() > 5 * hm[10:, 10:].mean()
+
+
+def test_scan_exit_codes(setup):
+    tmp, data, model = setup
+    r = runner.invoke(app, ["scan", str(data), "-m", str(model), "-o", str(tmp / "a1"),
+                            "--no-confirm", "--no-report", "--fail-on", "suspect"])
+    assert r.exit_code == 1, r.output
+    assert "fixed-position" in r.output
+    r = runner.invoke(app, ["scan", str(data), "-m", str(model), "-o", str(tmp / "a1"),
+                            "--no-confirm", "--no-report", "--fail-on", "never"])
+    assert r.exit_code == 0, r.output
+    assert json.loads((tmp / "a1" / "audit.json").read_text())["findings"][0]["class"] == "alpha"
+
+
+@pytest.mark.parametrize("args,message", [
+    (["--patch", "99"], "--patch must be at most the image side (32); got 99"),
+    (["--threshold", "nonsense=1"], "unknown threshold 'nonsense'"),
+    (["--threshold", "localized_rate"], "--threshold takes NAME=VALUE"),
+    (["--mean", "1,2"], "--mean"),
+])
+def test_scan_usage_errors_are_one_line_exit_2(setup, args, message):
+    tmp, data, model = setup
+    r = runner.invoke(app, ["scan", str(data), "-m", str(model), "-o", str(tmp / "bad"),
+                            "--no-confirm"] + args)
+    assert r.exit_code == 2, r.output
+    assert message in r.output
+    assert "Traceback" not in r.output
+
+
+def test_label_count_mismatch_is_a_one_line_error(setup, tmp_path):
+    tmp, data, model = setup
+    labels = tmp_path / "labels.txt"
+    labels.write_text("a\nb\n")
+    r = runner.invoke(app, ["inspect", str(model), "--labels", str(labels)])
+    assert r.exit_code == 2
+    assert "2 names but the model has 3 outputs" in r.output

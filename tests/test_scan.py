@@ -1,0 +1,168 @@
+"""Tests of scan.py (with classes.py and findings.py) on planted-shortcut models.
+
+The models are linear (tests/scan_fixtures.py), so the ground truth of what each class
+reads is known exactly: a 6x6 corner square, the whole image, or the border ring.
+"""
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from scan_fixtures import (CORNER, SIZE, border_model, clean_model, corner_model,
+                           make_dataset)
+from shortcut_audit.errors import DataError
+from shortcut_audit.findings import Thresholds
+from shortcut_audit.scan import ScanSettings, scan
+
+
+def iou(a, b):
+    ix = max(0.0, min(a[2], b[2]) - max(a[0], b[0]))
+    iy = max(0.0, min(a[3], b[3]) - max(a[1], b[1]))
+    inter = ix * iy
+    union = (a[2] - a[0]) * (a[3] - a[1]) + (b[2] - b[0]) * (b[3] - b[1]) - inter
+    return inter / union
+
+
+FAST = ScanSettings(confirm=False)
+
+
+def test_planted_corner_is_flagged_fixed_position_and_nothing_else(tmp_path):
+    data = make_dataset(tmp_path / "data", n=8)
+    result = scan(data, corner_model(tmp_path / "m.onnx"), out=tmp_path / "out", settings=FAST,
+                  report=False)
+    assert [c.accuracy for c in result.classes] == [1.0, 1.0, 1.0]
+    assert [(f.class_name, f.kind) for f in result.findings] == [("alpha", "fixed-position")]
+    planted = [0.0, 0.0, CORNER / SIZE, CORNER / SIZE]
+    assert iou(result.findings[0].region, planted) >= 0.5
+    assert result.findings[0].evidence["value"] >= 0.9
+    audit = json.loads((tmp_path / "out" / "audit.json").read_text())
+    assert audit["schema"] == 1
+    assert audit["findings"][0]["kind"] == "fixed-position"
+    assert audit["settings"]["thresholds"]["fixed_agreement"] == 0.5
+    assert len(audit["images"]) == 24
+
+
+def test_clean_model_gives_no_finding(tmp_path):
+    data = make_dataset(tmp_path / "data", n=8, corner_class=None)
+    result = scan(data, clean_model(tmp_path / "m.onnx"), out=tmp_path / "out", settings=FAST,
+                  report=False)
+    assert min(c.accuracy for c in result.classes) >= 0.9
+    assert result.findings == []
+
+
+def test_border_reading_class_is_flagged_background_with_given_masks(tmp_path):
+    data = make_dataset(tmp_path / "data", n=8, corner_class=None, backdrop_class="alpha",
+                        masks_root=tmp_path / "masks")
+    result = scan(data, border_model(tmp_path / "m.onnx"), out=tmp_path / "out",
+                  masks=tmp_path / "masks", settings=FAST, report=False)
+    kinds = [(f.class_name, f.kind) for f in result.findings]
+    assert ("alpha", "background") in kinds
+    assert all(name == "alpha" for name, _ in kinds)
+    f = next(f for f in result.findings if f.kind == "background")
+    assert f.evidence["mask"] == "given"
+
+
+def test_border_reading_class_is_flagged_with_estimated_masks(tmp_path):
+    data = make_dataset(tmp_path / "data", n=8, corner_class=None, backdrop_class="alpha", plain=True)
+    result = scan(data, border_model(tmp_path / "m.onnx"), out=tmp_path / "out", settings=FAST,
+                  report=False)
+    f = [f for f in result.findings if f.kind == "background"]
+    assert [x.class_name for x in f] == ["alpha"]
+    assert f[0].evidence["mask"] == "estimated"
+
+
+def _summary(index, rate):
+    from shortcut_audit.classes import ClassSummary
+    return ClassSummary(name=f"c{index}", index=index, images=20, correct=20, accuracy=1.0,
+                        mean_confidence=0.9, mean_heatmap=None,
+                        metrics={"small_area_rate": rate, "box_agreement": 0.0,
+                                 "median_decisive_area": 0.02, "median_background_share": None,
+                                 "object_erased_survival": None})
+
+
+def test_a_model_fragile_everywhere_does_not_get_every_class_flagged():
+    from shortcut_audit.findings import judge
+    # every class's decisions move when <= 5% is hidden: fragile, but no class stands out
+    assert judge([_summary(i, 0.9) for i in range(4)], []) == []
+    # one class far above the others is flagged, and only that one
+    found = judge([_summary(0, 0.9)] + [_summary(i, 0.1) for i in range(1, 4)], [])
+    assert [(f.class_name, f.kind) for f in found] == [("c0", "localized")]
+    assert found[0].evidence["others_median"] == pytest.approx(0.1)
+
+
+def test_labels_not_in_the_model_are_skipped(tmp_path):
+    data = make_dataset(tmp_path / "data", n=3)
+    (data / "delta").mkdir()
+    from PIL import Image
+    Image.new("RGB", (48, 48), (9, 9, 9)).save(data / "delta" / "x.png")
+    result = scan(data, corner_model(tmp_path / "m.onnx"), settings=FAST)
+    assert any(s.path == "delta/x.png" and "not one of the model's labels" in s.reason for s in result.skipped)
+
+
+def test_empty_dataset_is_a_data_error(tmp_path):
+    (tmp_path / "data" / "alpha").mkdir(parents=True)
+    with pytest.raises(DataError):
+        scan(tmp_path / "data", corner_model(tmp_path / "m.onnx"), settings=FAST)
+
+
+def _strip_run(audit: dict) -> dict:
+    audit = dict(audit)
+    audit.pop("run")
+    return audit
+
+
+def test_rerun_reuses_results_and_changed_settings_invalidate(tmp_path):
+    data = make_dataset(tmp_path / "data", n=4)
+    m = corner_model(tmp_path / "m.onnx")
+    first = scan(data, m, out=tmp_path / "out", settings=FAST, report=False)
+    again = scan(data, m, out=tmp_path / "out", settings=FAST, report=False)
+    assert again.run["passes_this_run"] == 0 and again.run["resumed_images"] == 12
+    assert _strip_run(first.to_dict()) == _strip_run(again.to_dict())
+    other = scan(data, m, out=tmp_path / "out", settings=ScanSettings(confirm=False, seed=1,
+                 plan=__import__("shortcut_audit.occlusion", fromlist=["x"]).GridPlan(patch=4, stride=4)),
+                 report=False)
+    assert other.run["resumed_images"] == 0
+
+
+KILL_SCRIPT = """
+import sys
+sys.path.insert(0, {tests!r})
+from shortcut_audit.scan import ScanSettings, scan
+scan({data!r}, {model!r}, out={out!r}, settings=ScanSettings(confirm=False), report=False)
+"""
+
+
+def test_sigkill_midway_then_rerun_gives_the_same_audit(tmp_path):
+    data = make_dataset(tmp_path / "data", n=30)
+    m = corner_model(tmp_path / "m.onnx")
+    ref = scan(data, m, out=tmp_path / "ref", settings=FAST, report=False)
+    out = tmp_path / "killed"
+    script = KILL_SCRIPT.format(tests=str(Path(__file__).parent), data=str(data), model=str(m), out=str(out))
+    env = dict(os.environ, OMP_NUM_THREADS="1")
+    killed_at = []
+    for delay in (1.2, 1.6):
+        proc = subprocess.Popen([sys.executable, "-c", script], env=env)
+        # wait until some results exist, then kill without warning
+        deadline = time.time() + 60
+        while time.time() < deadline:
+            n = len(list((out / "results").glob("*.json"))) if (out / "results").exists() else 0
+            if n >= 3 or proc.poll() is not None:
+                break
+            time.sleep(0.05)
+        time.sleep(delay * 0.1)
+        proc.send_signal(signal.SIGKILL)
+        proc.wait()
+        killed_at.append(len(list((out / "results").glob("*.json"))) - 1)
+    assert any(0 < k < 90 for k in killed_at), killed_at
+    final = scan(data, m, out=out, settings=FAST, report=False)
+    assert final.run["resumed_images"] > 0
+    assert _strip_run(final.to_dict()) == _strip_run(ref.to_dict())
+    # no half-written file is left behind
+    assert not list(out.rglob(".tmp-*"))
