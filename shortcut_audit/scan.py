@@ -30,7 +30,7 @@ from .findings import Finding, Thresholds, judge
 from .model import ModelConfig, OnnxClassifier
 from .occlusion import Fill, GridPlan, Plan, RandomPatchPlan, SmoothMaskPlan
 from .sensitivity import ImageStats, estimate_object_mask, image_job
-from .store import ResultStore, write_json
+from .store import ResultStore, remove_stale_temporaries, write_json
 
 __all__ = ["ScanSettings", "AuditResult", "scan", "analyse_entries", "DEFAULT_PLAN", "DEFAULT_FILL", "make_scorer"]
 
@@ -250,6 +250,8 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
     out_dir = Path(out) if out is not None else None
     store = None
     if out_dir is not None:
+        for folder in (out_dir, out_dir / "figures"):
+            remove_stale_temporaries(folder)
         store = ResultStore(out_dir / "results", _fingerprint(classifier, settings, masks))
     shape = (classifier.height, classifier.width)
     scorer = make_scorer(classifier, settings.score)

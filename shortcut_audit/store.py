@@ -35,6 +35,7 @@ __all__ = [
     "write_json",
     "ResultStore",
     "inside",
+    "remove_stale_temporaries",
 ]
 
 
@@ -104,6 +105,20 @@ def write_bytes_atomic(path: str | Path, data: bytes) -> None:
                           f"Free some space or pass another --out folder.") from None
 
 
+def remove_stale_temporaries(folder: str | Path) -> int:
+    """Delete temporary files a killed writer left in ``folder`` (not below it)."""
+    folder = Path(folder)
+    removed = 0
+    if folder.is_dir():
+        for p in folder.glob(".tmp-*"):
+            try:
+                p.unlink()
+                removed += 1
+            except OSError:
+                pass
+    return removed
+
+
 def write_json(path: str | Path, data: Any) -> None:
     """Write ``data`` as the project's JSON, atomically."""
     write_bytes_atomic(path, dumps(data).encode("utf-8"))
@@ -120,6 +135,7 @@ class ResultStore:
         self.folder = Path(folder)
         self.fingerprint = to_jsonable(fingerprint)
         self.reset = False
+        remove_stale_temporaries(self.folder)
         marker = self.folder / "fingerprint.json"
         if marker.exists():
             try:
