@@ -395,6 +395,66 @@ def scan(
         raise typer.Exit(code=1)
 
 
+@app.command()
+@guarded
+def compare(
+    images: Optional[Path] = typer.Argument(None, help="Dataset folder (omit with --before-audit/--after-audit).",
+                                            exists=True, file_okay=False),
+    before: Optional[Path] = typer.Option(None, "--before", help="The model before the change.", exists=True, dir_okay=False),
+    after: Optional[Path] = typer.Option(None, "--after", help="The model after the change.", exists=True, dir_okay=False),
+    out_dir: Path = typer.Option(..., "--out", "-o", help="Output folder: compare.json, compare.html, before/, after/.",
+                                 file_okay=False),
+    before_config: Optional[Path] = typer.Option(None, "--before-config", help="TOML model options of --before.",
+                                                 exists=True, dir_okay=False),
+    after_config: Optional[Path] = typer.Option(None, "--after-config", help="TOML model options of --after.",
+                                                exists=True, dir_okay=False),
+    before_audit: Optional[Path] = typer.Option(None, "--before-audit", help="A folder a scan wrote (instead of --before).",
+                                                exists=True, file_okay=False),
+    after_audit: Optional[Path] = typer.Option(None, "--after-audit", help="A folder a scan wrote (instead of --after).",
+                                               exists=True, file_okay=False),
+    masks: Optional[Path] = typer.Option(None, "--masks", help="Object masks mirroring the images.", exists=True, file_okay=False),
+    manifest: Optional[Path] = typer.Option(None, "--manifest", help="CSV with path,label[,mask].", exists=True, dir_okay=False),
+    seed: int = typer.Option(0, "--seed", help="Seed of the scans and the bootstrap."),
+    resamples: int = typer.Option(2000, "--resamples", min=100, help="Bootstrap resamples per interval."),
+    confirm: bool = typer.Option(True, "--confirm/--no-confirm", help="Run the counterfactual tests on both models."),
+    fail_on: CompareGate = typer.Option(CompareGate.new, "--fail-on", help="Exit 1 on a new finding, or on any that persists."),
+):
+    """The same images through two models: which shortcuts were resolved, which persist, which are new.
+
+    [bold]Examples[/]
+
+      shortcut-audit compare photos/ --before base.onnx --after dropout.onnx --out cmp/
+
+      shortcut-audit compare --before-audit audit_a/ --after-audit audit_b/ --out cmp/ --fail-on persists
+    """
+    from .compare import compare as run_compare
+    from .scan import ScanSettings
+
+    settings = ScanSettings(seed=seed, confirm=confirm)
+    with _Bar("compare") as bar:
+        result = run_compare(images, before=before, after=after, out=out_dir,
+                             before_config=before_config, after_config=after_config, masks=masks,
+                             manifest=manifest, settings=settings, before_audit=before_audit,
+                             after_audit=after_audit, seed=seed, resamples=resamples, progress=bar)
+    print_comparison(result)
+    out.print(f"report: {out_dir / 'compare.html'}", highlight=False)
+    code = result.exit_code(fail_on.value)
+    if code:
+        raise typer.Exit(code=code)
+
+
+def print_comparison(result) -> None:
+    """The verdict per finding of a comparison."""
+    table = Table(title="before -> after")
+    for col in ("class", "finding", "before", "after", "verdict"):
+        table.add_column(col)
+    for f in result.findings:
+        table.add_row(f.class_name, f.kind, f.before_status, f.after_status, f.verdict)
+    if not result.findings:
+        table.add_row("-", "no finding in either audit", "-", "-", "-")
+    out.print(table)
+
+
 def print_summary(result) -> None:
     """The per-class verdict table of an audit."""
     table = Table(title="per-class verdict")

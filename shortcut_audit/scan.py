@@ -22,6 +22,7 @@ from typing import Any, Callable, Sequence
 import numpy as np
 
 from . import __version__
+from .confirm import add_motif_findings, confirm_findings
 from .classes import ClassAccumulator, ClassSummary, ImageSummary, summarise_classes
 from .dataset import ImageEntry, ImageRecord, Skip, class_names, iter_records, list_images
 from .engine import PassEngine
@@ -301,7 +302,15 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
     skipped.sort(key=lambda s: s.path)
     classes = summarise_classes(summaries, classifier.labels, accumulator=acc, shape=shape)
     findings = judge(classes, summaries, thresholds=settings.thresholds)
+    by_path = {e.path: e for e in usable}
+    findings = add_motif_findings(findings, classes, summaries, by_path, classifier,
+                                  thresholds=settings.thresholds, plan=settings.plan)
     findings = [dataclasses.replace(f, id=f"F{i + 1}") for i, f in enumerate(findings)]
+    if settings.confirm:
+        findings = confirm_findings(findings, summaries, by_path, classifier,
+                                    thresholds=settings.thresholds, fill=settings.fill,
+                                    budget=settings.probe_budget, seed=settings.seed,
+                                    progress=progress)
 
     elapsed = time.perf_counter() - t_start
     model_info = {"path": str(classifier.path), "sha256": classifier.sha256,

@@ -1,0 +1,222 @@
+"""After the heatmaps: recurring motifs and the counterfactual tests of each finding.
+
+This is the second half of a scan. It re-decodes the few images it needs (a class's
+images with small decisive areas, and a seeded sample of the other classes' images),
+so no pixels are kept from the first half:
+
+1. **Motifs.** For each class whose small-area rate stands out from the other classes
+   (``motif_margin``), the decisive crops are clustered by appearance
+   (:func:`~shortcut_audit.motifs.find_motifs`). A cluster covering ``motif_coverage``
+   of the class's correct images becomes a ``recurring-motif`` finding (replacing a
+   ``localized`` one for that class: it says more), or, for a ``fixed-position``
+   class, evidence added to that finding.
+2. **Tests.** Each finding gets the test that fits its kind: a transplant at the same
+   place (fixed-position), a transplant of the medoid crop onto other objects
+   (recurring-motif), a transplant of each image's own decisive region (localized),
+   a background swap (background); plus the removal test for regions. The status
+   becomes ``confirmed`` or ``not-confirmed`` by the thresholds ``confirm_alpha`` and
+   ``confirm_effect``; counts, rates, the p-value and the images used go into the
+   finding's evidence.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from typing import Callable, Sequence
+
+import numpy as np
+
+from .classes import ClassSummary, ImageSummary
+from .dataset import ImageEntry, ImageRecord, iter_records
+from .engine import PassEngine
+from .findings import Finding, Thresholds
+from .motifs import cut_crop, find_motifs
+from .probes import background_swap_job, removal_job, transplant_job
+from .sensitivity import estimate_object_mask
+
+__all__ = ["add_motif_findings", "confirm_findings", "crop_side"]
+
+
+def crop_side(plan, side: int) -> int:
+    """Side of a motif crop in pixels: about twice the occlusion patch (at least 8
+    pixels, at most half the image), so a decisive sliver is seen with its context."""
+    patch = getattr(plan, "patch", None)
+    if patch is None:                       # random plans: their largest patch
+        patch = getattr(plan, "max_size", 0.125)
+    px = patch if isinstance(patch, int) else int(round(float(patch) * side))
+    return int(max(8, min(side // 2, 2 * px)))
+
+
+def _records(entries: Sequence[ImageEntry], classifier) -> dict[str, ImageRecord]:
+    out = {}
+    for rec in iter_records(entries, size=(classifier.height, classifier.width),
+                            channels=classifier.channels, resize=classifier.resize):
+        if isinstance(rec, ImageRecord):
+            out[rec.path] = rec
+    return out
+
+
+def _mask_of(rec: ImageRecord) -> np.ndarray | None:
+    if rec.mask is not None:
+        return rec.mask
+    return estimate_object_mask(rec.pixels)
+
+
+def add_motif_findings(findings: list[Finding], classes: list[ClassSummary],
+                       images: list[ImageSummary], entries: dict[str, ImageEntry], classifier, *,
+                       thresholds: Thresholds, plan, max_examples: int = 8) -> list[Finding]:
+    """Findings with recurring motifs added (or merged into fixed-position ones)."""
+    th = thresholds
+    out = list(findings)
+    rates = {c.index: (c.metrics.get("small_area_rate") or 0.0) for c in classes}
+    side = crop_side(plan, min(classifier.height, classifier.width))
+    for cls in classes:
+        if cls.correct < th.min_correct_images:
+            continue
+        others = [r for i, r in rates.items() if i != cls.index]
+        if rates[cls.index] - (float(np.median(others)) if others else 0.0) < th.motif_margin:
+            continue
+        small = sorted([im for im in images if im.label == cls.index and im.small],
+                       key=lambda im: im.path)
+        if len(small) < 3:
+            continue
+        recs = _records([entries[im.path] for im in small], classifier)
+        crops, paths = [], []
+        for im in small:
+            rec = recs.get(im.path)
+            if rec is None or im.decisive_box is None:
+                continue
+            crops.append(cut_crop(rec.pixels, im.decisive_box, index=len(crops), min_side=side))
+            paths.append(im.path)
+        motifs = find_motifs(crops, n_images=cls.correct, min_coverage=th.motif_coverage)
+        if not motifs:
+            continue
+        motif = max(motifs, key=lambda m: (m.coverage, -m.cohesion))
+        member_paths = [paths[i] for i in motif.members]
+        evidence = {"statistic": "motif_coverage", "value": motif.coverage,
+                    "threshold": th.motif_coverage, "spread": motif.spread,
+                    "cohesion": motif.cohesion, "medoid": paths[motif.medoid],
+                    "medoid_box": crops[motif.medoid].box, "member_paths": member_paths,
+                    "member_boxes": [list(b) for b in motif.boxes], "images": cls.correct}
+        fixed = next((f for f in out if f.class_index == cls.index and f.kind == "fixed-position"), None)
+        if fixed is not None:
+            i = out.index(fixed)
+            out[i] = dataclasses.replace(fixed, evidence=dict(fixed.evidence, motif=evidence))
+            continue
+        local = next((f for f in out if f.class_index == cls.index and f.kind == "localized"), None)
+        finding = Finding(id="", class_name=cls.name, class_index=cls.index, kind="recurring-motif",
+                          region=None, evidence=evidence,
+                          examples=tuple(member_paths[:max_examples]))
+        if local is not None:
+            finding = dataclasses.replace(finding, evidence=dict(
+                evidence, localized=local.evidence))
+            out[out.index(local)] = finding
+        else:
+            out.append(finding)
+    out.sort(key=lambda f: (f.class_index, ("fixed-position", "localized", "recurring-motif",
+                                            "background").index(f.kind)))
+    return out
+
+
+def confirm_findings(findings: list[Finding], images: list[ImageSummary],
+                     entries: dict[str, ImageEntry], classifier, *, thresholds: Thresholds,
+                     fill, budget: int, seed: int,
+                     progress: Callable[[dict], None] | None = None) -> list[Finding]:
+    """Each finding with its counterfactual test run and its status set."""
+    if not findings:
+        return findings
+    rng = np.random.default_rng(seed)
+    by_class: dict[int, list[ImageSummary]] = {}
+    for im in sorted(images, key=lambda im: im.path):
+        by_class.setdefault(im.label, []).append(im)
+
+    def sample(pool: list, n: int) -> list:
+        if len(pool) <= n:
+            return list(pool)
+        idx = np.sort(rng.choice(len(pool), size=n, replace=False))
+        return [pool[i] for i in idx]
+
+    # Decide every image each test needs, then decode them once.
+    plans = []
+    wanted: set[str] = set()
+    for f in findings:
+        own = [im for im in by_class.get(f.class_index, []) if im.correct]
+        others = [im for lab, ims in by_class.items() if lab != f.class_index for im in ims
+                  if im.correct]
+        own_s, others_s = sample(own, budget), sample(others, budget)
+        plans.append((f, own_s, others_s))
+        wanted.update(im.path for im in own_s + others_s)
+    recs = _records([entries[p] for p in sorted(wanted)], classifier)
+
+    jobs = []
+    for k, (f, own_s, others_s) in enumerate(plans):
+        own_r = [(im, recs[im.path]) for im in own_s if im.path in recs]
+        oth_r = [(im, recs[im.path]) for im in others_s if im.path in recs]
+        job_seed = int(seed) * 1009 + k
+        if not own_r or not oth_r:
+            continue
+        targets = [(r.pixels, _mask_of(r), im.label) for im, r in oth_r]
+        if f.kind == "background":
+            own_m = [(r.pixels, _mask_of(r), im.label) for im, r in own_r]
+            own_m = [t for t in own_m if t[1] is not None and t[1].any() and not t[1].all()]
+            oth_m = [t for t in targets if t[1] is not None and t[1].any() and not t[1].all()]
+            if len(own_m) >= 2 and len(oth_m) >= 2:
+                jobs.append(((k, "test"), background_swap_job(own=own_m, others=oth_m, suspect=f.class_index,
+                                                              trials=budget, seed=job_seed)))
+            continue
+        if f.kind == "fixed-position" and f.region is not None:
+            sources = [(r.pixels, f.region) for _, r in own_r]
+            boxes = [f.region] * len(own_r)
+            placement = "same"
+        elif f.kind == "recurring-motif":
+            medoid = recs.get(f.evidence["medoid"])
+            if medoid is None:
+                medoid = _records([entries[f.evidence["medoid"]]], classifier).get(f.evidence["medoid"])
+            if medoid is None:
+                continue
+            sources = [(medoid.pixels, f.evidence["medoid_box"])]
+            boxed = [(im, r) for im, r in own_r if im.decisive_box is not None]
+            boxes = [im.decisive_box for im, _ in boxed]
+            own_r = boxed
+            placement = "on-object"
+        else:
+            boxed = [(im, r) for im, r in own_r if im.decisive_box is not None]
+            if not boxed:
+                continue
+            sources = [(r.pixels, im.decisive_box) for im, r in boxed]
+            boxes = [im.decisive_box for im, _ in boxed]
+            own_r = boxed
+            placement = "on-object"
+        jobs.append(((k, "test"), transplant_job(sources=sources, targets=targets, suspect=f.class_index,
+                                                 placement=placement, trials=budget, seed=job_seed)))
+        if own_r:
+            jobs.append(((k, "removal"), removal_job(images=[(r.pixels, im.label) for im, r in own_r],
+                                                     boxes=boxes, fill_fn=fill, suspect=f.class_index)))
+
+    engine = PassEngine(classifier.predict, batch_size=classifier.batch_size)
+    results: dict = {}
+    for key, res in engine.run(jobs):
+        results[key] = res
+        if progress is not None:
+            progress({"phase": "tests", "done": len(results), "total": len(jobs),
+                      "passes": engine.stats.passes, "passes_per_second": engine.stats.passes_per_second})
+
+    out = []
+    for k, (f, own_s, others_s) in enumerate(plans):
+        test = results.get((k, "test"))
+        removal = results.get((k, "removal"))
+        if test is None or isinstance(test, Exception):
+            reason = (f"test failed: {test}" if isinstance(test, Exception)
+                      else "not enough images (or masks) to run its test")
+            out.append(dataclasses.replace(f, status="not-confirmed", evidence=dict(
+                f.evidence, test={"ran": False, "reason": reason}, p_value=None)))
+            continue
+        if isinstance(removal, dict):
+            test = dataclasses.replace(test, removal=removal)
+        status = test.status(alpha=thresholds.confirm_alpha, min_effect=thresholds.confirm_effect)
+        d = test.to_dict()
+        d["ran"] = True
+        d["images"] = {"own": [im.path for im in own_s], "others": [im.path for im in others_s]}
+        out.append(dataclasses.replace(f, status=status, evidence=dict(
+            f.evidence, test=d, p_value=test.p_value)))
+    return out
