@@ -16,7 +16,10 @@ from .dataset import ImageEntry, ImageRecord, Skip, class_names, list_images, lo
 from .engine import PassEngine
 from .errors import AuditError, DataError, ImageSkip, ModelError, OutputError, UsageError
 from .findings import Finding, Thresholds
+from .compare import CompareResult, compare
 from .heatmap import run_heatmap
+from .pack import make_pack
+from .report import render_report, write_scan_report
 from .model import Classifier, ModelConfig, OnnxClassifier, read_model_config
 from .occlusion import Fill, GridPlan, RandomPatchPlan, SmoothMaskPlan
 from .scan import AuditResult, ScanSettings, scan
@@ -34,4 +37,6 @@ __all__ = [
     "Heatmap", "ImageStats", "occlusion_heatmap", "run_heatmap",
     # the audit
     "ScanSettings", "AuditResult", "Finding", "Thresholds", "scan",
+    # what people read
+    "render_report", "write_scan_report", "make_pack", "compare", "CompareResult",
 ]

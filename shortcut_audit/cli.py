@@ -443,6 +443,32 @@ def compare(
         raise typer.Exit(code=code)
 
 
+@app.command()
+@guarded
+def pack(
+    audit_dir: Path = typer.Argument(..., help="A folder a scan wrote (holds audit.json).", exists=True, file_okay=False),
+    out_path: Path = typer.Option(..., "--out", "-o", help="A folder, or a file ending in .zip."),
+    finding: Optional[str] = typer.Option(None, "--finding", help="Only this finding (e.g. F2) [default: all]."),
+    images: Optional[Path] = typer.Option(None, "--images", help="Where the images are now, if they moved.",
+                                          exists=True, file_okay=False),
+):
+    """The evidence pack of an audit's findings, for whoever collects data.
+
+    Per finding: the flagged images (copied), their overlays, manifest.csv, a contact
+    sheet and request.md in plain words.
+
+    [bold]Examples[/]
+
+      shortcut-audit pack audit/ --out evidence/
+
+      shortcut-audit pack audit/ --out vase-mark.zip --finding F1
+    """
+    from .pack import make_pack
+
+    written = make_pack(audit_dir, out_path, finding=finding, images=images)
+    out.print(f"evidence pack: {written}", highlight=False)
+
+
 def print_comparison(result) -> None:
     """The verdict per finding of a comparison."""
     table = Table(title="before -> after")

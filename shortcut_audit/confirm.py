@@ -149,6 +149,8 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
     recs = _records([entries[p] for p in sorted(wanted)], classifier)
 
     jobs = []
+    test_sources: dict[int, list[str]] = {}     # per test: the image path of each source index
+    test_targets: dict[int, list[str]] = {}     # and of each target index
     for k, (f, own_s, others_s) in enumerate(plans):
         own_r = [(im, recs[im.path]) for im in own_s if im.path in recs]
         oth_r = [(im, recs[im.path]) for im in others_s if im.path in recs]
@@ -156,16 +158,23 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
         if not own_r or not oth_r:
             continue
         targets = [(r.pixels, _mask_of(r), im.label) for im, r in oth_r]
+        test_targets[k] = [im.path for im, _ in oth_r]
         if f.kind == "background":
-            own_m = [(r.pixels, _mask_of(r), im.label) for im, r in own_r]
-            own_m = [t for t in own_m if t[1] is not None and t[1].any() and not t[1].all()]
-            oth_m = [t for t in targets if t[1] is not None and t[1].any() and not t[1].all()]
+            def usable(t):
+                return t[1] is not None and t[1].any() and not t[1].all()
+            own_all = [((r.pixels, _mask_of(r), im.label), im.path) for im, r in own_r]
+            oth_all = [(t, im.path) for t, (im, _) in zip(targets, oth_r)]
+            own_m = [t for t, _ in own_all if usable(t)]
+            oth_m = [t for t, _ in oth_all if usable(t)]
+            test_sources[k] = [p for t, p in own_all if usable(t)]
+            test_targets[k] = [p for t, p in oth_all if usable(t)]
             if len(own_m) >= 2 and len(oth_m) >= 2:
                 jobs.append(((k, "test"), background_swap_job(own=own_m, others=oth_m, suspect=f.class_index,
                                                               trials=budget, seed=job_seed)))
             continue
         if f.kind == "fixed-position" and f.region is not None:
             sources = [(r.pixels, f.region) for _, r in own_r]
+            test_sources[k] = [im.path for im, _ in own_r]
             boxes = [f.region] * len(own_r)
             placement = "same"
         elif f.kind == "recurring-motif":
@@ -175,6 +184,7 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
             if medoid is None:
                 continue
             sources = [(medoid.pixels, f.evidence["medoid_box"])]
+            test_sources[k] = [f.evidence["medoid"]]
             boxed = [(im, r) for im, r in own_r if im.decisive_box is not None]
             boxes = [im.decisive_box for im, _ in boxed]
             own_r = boxed
@@ -184,6 +194,7 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
             if not boxed:
                 continue
             sources = [(r.pixels, im.decisive_box) for im, r in boxed]
+            test_sources[k] = [im.path for im, _ in boxed]
             boxes = [im.decisive_box for im, _ in boxed]
             own_r = boxed
             placement = "on-object"
@@ -216,6 +227,13 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
         status = test.status(alpha=thresholds.confirm_alpha, min_effect=thresholds.confirm_effect)
         d = test.to_dict()
         d["ran"] = True
+        src_paths = test_sources.get(k, [])
+        tgt_paths = test_targets.get(k, [])
+        for ex in d.get("examples", []):
+            if isinstance(ex.get("source"), int) and ex["source"] < len(src_paths):
+                ex["source_path"] = src_paths[ex["source"]]
+            if isinstance(ex.get("target"), int) and ex["target"] < len(tgt_paths):
+                ex["target_path"] = tgt_paths[ex["target"]]
         d["images"] = {"own": [im.path for im in own_s], "others": [im.path for im in others_s]}
         out.append(dataclasses.replace(f, status=status, evidence=dict(
             f.evidence, test=d, p_value=test.p_value)))

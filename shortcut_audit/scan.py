@@ -329,8 +329,8 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
     if out_dir is not None:
         write_json(out_dir / "audit.json", result.to_dict())
         if report:
-            from .report import write_scan_figures
-            write_scan_figures(result, out_dir)
+            from .report import write_scan_report
+            write_scan_report(result, out_dir)
     return result
 
 

@@ -75,6 +75,16 @@ def inside(root: Path, target: Path) -> bool:
         return False
 
 
+def _file_mode() -> int:
+    """The mode a plain ``open()`` would give a new file (0666 less the umask)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return 0o666 & ~mask
+
+
+_MODE = _file_mode()
+
+
 def write_bytes_atomic(path: str | Path, data: bytes) -> None:
     """Write ``data`` to ``path`` through a temporary file and a rename.
 
@@ -95,6 +105,7 @@ def write_bytes_atomic(path: str | Path, data: bytes) -> None:
             fh.write(data)
             fh.flush()
             os.fsync(fh.fileno())
+        os.chmod(tmp, _MODE)          # mkstemp makes 0600; results are ordinary files
         os.replace(tmp, path)
     except OSError as exc:
         try:
