@@ -18,6 +18,7 @@ from typing import Callable, Optional
 
 import typer
 from rich.console import Console
+from rich.markup import escape
 from rich.progress import (BarColumn, MofNCompleteColumn, Progress, TextColumn,
                            TimeElapsedColumn, TimeRemainingColumn)
 from rich.table import Table
@@ -166,7 +167,8 @@ def build_plan(plan: PlanKind, patch, stride, count, min_size, max_size, cells, 
 
 
 def _fail(exc: BaseException) -> None:
-    err.print(f"[bold red]error:[/] {exc}", highlight=False, markup=True, soft_wrap=True)
+    err.print(f"[bold red]error:[/] {escape(' '.join(str(exc).split()))}", highlight=False, markup=True,
+              soft_wrap=True)
     raise typer.Exit(code=2)
 
 
@@ -391,6 +393,12 @@ def scan(
     if not no_report and (out_dir / "report.html").exists():
         out.print(f"report: {out_dir / 'report.html'}", highlight=False)
     out.print(f"audit:  {out_dir / 'audit.json'}", highlight=False)
+    if result.dataset["audited"] == 0:
+        # Nothing audited proves nothing: a launch gate must not pass on it.
+        err.print(f"error: no image could be audited ({len(result.skipped)} skipped, reasons in "
+                  f"{out_dir / 'audit.json'}); fix the images or the model and run again.",
+                  highlight=False, markup=False, soft_wrap=True)
+        raise typer.Exit(code=2)
     if result.at_or_above(fail_on.value):
         raise typer.Exit(code=1)
 
@@ -469,6 +477,47 @@ def pack(
     out.print(f"evidence pack: {written}", highlight=False)
 
 
+@app.command()
+@guarded
+def demo(
+    out_dir: Path = typer.Option(Path("demo_audit"), "--out", "-o", help="Output folder.", file_okay=False),
+):
+    """The whole job on the shipped demo: a ceramics catalogue with planted shortcuts.
+
+    Scans the catalogue with three models (baseline, dropout, rebalanced), compares
+    baseline against each, and writes the reports and the evidence pack.
+
+    [bold]Examples[/]
+
+      shortcut-audit demo --out demo_audit
+    """
+    from .showcase import run_demo
+
+    with _Bar("demo") as bar:
+        result = run_demo(out_dir, progress=bar)
+    table = Table(title="demo: what each model's audit found")
+    table.add_column("model")
+    classes = [c.name for c in result["audits"]["baseline"].classes]
+    for name in classes:
+        table.add_column(name)
+    for model, audit in result["audits"].items():
+        cells = []
+        for name in classes:
+            fs = [f for f in audit.findings if f.class_name == name]
+            cells.append(", ".join(f"{f.kind} ({f.status})" for f in fs) or "-")
+        table.add_row(model, *cells)
+    out.print(table)
+    for name, cmp in result["comparisons"].items():
+        counts = {k: v for k, v in cmp.counts().items() if v}
+        text = ", ".join(f"{v} {k}" for k, v in counts.items()) or "no finding in either"
+        out.print(f"baseline -> {name}: {text}", highlight=False)
+    for label, path in result["reports"].items():
+        out.print(f"report ({label}): {path}", highlight=False)
+    if result["pack"] is not None:
+        out.print(f"evidence pack: {result['pack']}", highlight=False)
+    out.print(f"done in {result['elapsed_seconds']:.0f} s", highlight=False)
+
+
 def print_comparison(result) -> None:
     """The verdict per finding of a comparison."""
     table = Table(title="before -> after")
@@ -492,7 +541,7 @@ def print_summary(result) -> None:
     for c in result.classes:
         fs = by_class.get(c.name, [])
         text = "; ".join(f"{f.id} {f.kind} ({f.status})" for f in fs) or "none"
-        table.add_row(c.name, str(c.images), f"{c.accuracy:.0%}", f"{c.mean_confidence:.2f}", text)
+        table.add_row(escape(c.name), str(c.images), f"{c.accuracy:.0%}", f"{c.mean_confidence:.2f}", escape(text))
     out.print(table)
     if result.skipped:
         out.print(f"{len(result.skipped)} file(s) skipped; reasons in audit.json", highlight=False)

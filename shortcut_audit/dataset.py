@@ -626,6 +626,7 @@ def _from_folders(
 ) -> tuple[list[ImageEntry], list[Skip]]:
     entries: list[ImageEntry] = []
     skips: list[Skip] = []
+    shown_paths: set[str] = set()
     for item in _walk(root, (), root_real, extensions, {root_real}):
         if isinstance(item, Skip):
             skips.append(item)
@@ -637,8 +638,15 @@ def _from_folders(
                 reason="image is not inside a class folder (expected root/<class>/<image>)",
             ))
             continue
+        shown = _display("/".join(parts))
+        if shown in shown_paths:
+            skips.append(Skip(path=shown, reason=(
+                "another file is shown under the same name (bytes that are not UTF-8 appear as \\xNN); "
+                "rename one of them")))
+            continue
+        shown_paths.add(shown)
         entries.append(ImageEntry(
-            path=_display("/".join(parts)),
+            path=shown,
             label=_display(parts[0]),
             file=path,
             mask_file=masks.find(parts) if masks else None,

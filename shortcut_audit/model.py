@@ -951,7 +951,8 @@ class OnnxClassifier:
                 )
             return cfg.labels
         if dataset_labels is not None:
-            names = _check_field("labels", list(dataset_labels), "the dataset's class names")
+            _check_field("labels", list(dataset_labels), "the dataset's class names")  # checks only
+            names = tuple(dataset_labels)  # kept as the dataset spells them, or no image matches
             if len(names) != k:
                 raise ModelError(
                     f"the dataset has {len(names)} classes but the model has {outputs}; pass "
@@ -1038,7 +1039,13 @@ class OnnxClassifier:
         if self.fixed_batch is not None and n < self.fixed_batch:
             pad = np.repeat(feed[-1:], self.fixed_batch - n, axis=0)
             feed = np.concatenate([feed, pad], axis=0)
-        out = self._session.run([self.output_name], {self.input_name: feed})[0]
+        try:
+            out = self._session.run([self.output_name], {self.input_name: feed})[0]
+        except Exception as exc:  # onnxruntime's run-time failures (bad index, shape, ...)
+            raise ModelError(
+                f"{self.path.name}: onnxruntime failed on a batch of {feed.shape[0]} images "
+                f"({_short(exc)}); the model does not run on every input. Fix or re-export the model."
+            ) from None
         out = np.asarray(out)
         if out.ndim != 2 or out.shape[0] != feed.shape[0]:
             raise ModelError(

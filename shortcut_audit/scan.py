@@ -151,6 +151,18 @@ def _model_description(classifier) -> dict:
     return d
 
 
+def _source(e: ImageEntry) -> list:
+    """What a stored result was made from: size and modification time of the image (and mask)."""
+    sig = []
+    for f in (e.file, e.mask_file):
+        try:
+            st = os.stat(f) if f is not None else None
+        except OSError:
+            st = None
+        sig.append(None if st is None else [st.st_size, st.st_mtime_ns])
+    return sig
+
+
 def _summary_from_record(rec: dict) -> ImageSummary:
     fields = {f.name for f in dataclasses.fields(ImageSummary)}
     return ImageSummary(**{k: rec[k] for k in fields if k in rec})
@@ -226,6 +238,11 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
     t_start = time.perf_counter()
     settings = settings or ScanSettings()
     entries, skipped = list_images(images, manifest=manifest, masks=masks, per_class=settings.per_class)
+    if out is not None:  # an output folder inside the image folder is not data
+        out_real = Path(out).resolve()
+        entries = [e for e in entries if not e.file.resolve().is_relative_to(out_real)]
+        skipped = [s for s in skipped
+                   if not (Path(images) / s.path.rstrip("/")).resolve().is_relative_to(out_real)]
     if not entries:
         raise DataError(f"no usable images under {images}; put images in one folder per class "
                         f"or pass --manifest.")
@@ -257,7 +274,8 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
     shape = (classifier.height, classifier.width)
     scorer = make_scorer(classifier, settings.score)
     batch = classifier.batch_size
-    todo = [e for e in usable if store is None or not store.has(e.path)]
+    source = {e.path: _source(e) for e in usable}
+    todo = [e for e in usable if store is None or not store.has(e.path, source[e.path])]
     done_count = len(usable) - len(todo)
     memory: dict[str, tuple[dict, dict]] = {}
 
@@ -274,7 +292,7 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
             engine=engine):
         done_count += 1
         if store is not None:
-            store.put(path, record, arrays)
+            store.put(path, dict(record, source=source[path]), arrays)
         else:
             memory[path] = (record, arrays)
         report_progress("images", engine)

@@ -107,11 +107,13 @@ def write_bytes_atomic(path: str | Path, data: bytes) -> None:
             os.fsync(fh.fileno())
         os.chmod(tmp, _MODE)          # mkstemp makes 0600; results are ordinary files
         os.replace(tmp, path)
-    except OSError as exc:
+    except BaseException as exc:  # also KeyboardInterrupt: never leave the temporary behind
         try:
             os.unlink(tmp)
         except OSError:
             pass
+        if not isinstance(exc, OSError):
+            raise
         raise OutputError(f"cannot write {path}: {exc.strerror or exc}. "
                           f"Free some space or pass another --out folder.") from None
 
@@ -169,8 +171,15 @@ class ResultStore:
     def key(path: str) -> str:
         return hashlib.sha256(path.encode("utf-8", "surrogatepass")).hexdigest()[:24]
 
-    def has(self, path: str) -> bool:
-        return (self.folder / f"{self.key(path)}.json").exists()
+    def has(self, path: str, source: Any = None) -> bool:
+        """Whether a complete record of ``path`` exists (made from ``source``, when given)."""
+        jp = self.folder / f"{self.key(path)}.json"
+        if source is None or not jp.exists():
+            return jp.exists()
+        try:
+            return json.loads(jp.read_text(encoding="utf-8")).get("source") == to_jsonable(source)
+        except (OSError, ValueError):
+            return False
 
     def put(self, path: str, record: dict, arrays: dict[str, np.ndarray] | None = None) -> None:
         k = self.key(path)
