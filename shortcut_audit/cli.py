@@ -348,6 +348,10 @@ def scan(
     threshold: list[str] = typer.Option([], "--threshold", help="Override one threshold: NAME=VALUE (repeatable)."),
     no_estimate: bool = typer.Option(False, "--no-estimate-masks", help="Do not estimate masks on plain backdrops."),
     no_report: bool = typer.Option(False, "--no-report", help="Write audit.json only (no figures, no HTML)."),
+    cluster: Optional[str] = typer.Option(
+        None, "--cluster", metavar="ADDRESS|local:N",
+        help='Spread the per-image work on Dask: a scheduler address (tcp://host:8786) or local:N '
+             'worker processes. Needs pip install "shortcut_audit[cluster]".'),
     fail_on: ScanGate = typer.Option(ScanGate.confirmed, "--fail-on", help="Exit 1 when a finding is at least this."),
     labels: Optional[Path] = LabelsOpt, config: Optional[Path] = ConfigOpt,
     layout: Optional[Layout] = LayoutOpt, size: Optional[str] = SizeOpt,
@@ -366,6 +370,8 @@ def scan(
 
       shortcut-audit scan photos/ -m model.onnx -o audit/ --threshold localized_rate=0.5 --per-class 50
 
+      shortcut-audit scan photos/ -m model.onnx -o audit/ --batch-size 16 --cluster local:4
+
     An interrupted scan keeps what it finished: run the same command again to resume.
     """
     from .scan import ScanSettings, scan as run_scan
@@ -383,7 +389,7 @@ def scan(
         with _Bar("scan") as bar:
             result = run_scan(images, model, out=out_dir, masks=masks, manifest=manifest,
                               model_config=cfg, settings=settings, estimate_masks=not no_estimate,
-                              progress=bar, report=not no_report)
+                              progress=bar, report=not no_report, cluster=cluster)
     except KeyboardInterrupt:
         kept = len(list((out_dir / "results").glob("*.npz"))) if (out_dir / "results").exists() else 0
         err.print(f"interrupted: the results of {kept} images are kept in {out_dir / 'results'}; "

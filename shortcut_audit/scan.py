@@ -12,6 +12,7 @@ the same audit.json.
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import os
 import time
@@ -202,7 +203,8 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
          settings: ScanSettings | None = None,
          estimate_masks: bool = True,
          progress: Callable[[dict], None] | None = None,
-         report: bool = True) -> AuditResult:
+         report: bool = True,
+         cluster: str | None = None) -> AuditResult:
     """Audit a labelled image set.
 
     Parameters
@@ -226,6 +228,9 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
         Called with ``{"done", "total", "passes", "passes_per_second", "phase"}``.
     report : bool
         Write figures and report.html into ``out``.
+    cluster : str, optional
+        Run the per-image half on Dask: a scheduler address (``tcp://host:8786``) or
+        ``local:N`` worker processes (cluster.py; needs the ``cluster`` extra).
 
     Returns
     -------
@@ -237,6 +242,9 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
     """
     t_start = time.perf_counter()
     settings = settings or ScanSettings()
+    if cluster is not None:
+        from .cluster import check_cluster
+        check_cluster(cluster)        # a malformed --cluster or a missing Dask fails first
     entries, skipped = list_images(images, manifest=manifest, masks=masks, per_class=settings.per_class)
     if out is not None:  # an output folder inside the image folder is not data
         out_real = Path(out).resolve()
@@ -287,15 +295,23 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
 
     engine = PassEngine(scorer, batch_size=batch, on_batch=lambda n: report_progress("images", engine))
     report_progress("images", engine)
-    for path, record, arrays in analyse_entries(
-            todo, classifier, settings, estimate_masks=estimate_masks, label_index=label_index,
-            engine=engine):
-        done_count += 1
-        if store is not None:
-            store.put(path, dict(record, source=source[path]), arrays)
-        else:
-            memory[path] = (record, arrays)
-        report_progress("images", engine)
+    if cluster is None:
+        results = analyse_entries(todo, classifier, settings, estimate_masks=estimate_masks,
+                                  label_index=label_index, engine=engine)
+    else:
+        from .cluster import iter_cluster_results
+        results = iter_cluster_results(todo, classifier.path, classifier.config, settings,
+                                       label_index=label_index, estimate_masks=estimate_masks,
+                                       address=cluster, sha256=classifier.sha256,
+                                       stats=engine.stats)
+    with contextlib.closing(results):   # an error below cancels the cluster's tasks at once
+        for path, record, arrays in results:
+            done_count += 1
+            if store is not None:
+                store.put(path, dict(record, source=source[path]), arrays)
+            else:
+                memory[path] = (record, arrays)
+            report_progress("images", engine)
 
     # Aggregate from the store, image by image.
     acc = ClassAccumulator(len(classifier.labels), shape)
