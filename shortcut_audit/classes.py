@@ -52,6 +52,7 @@ class ImageSummary:
     mask_source: str | None = None
     survives_object_erased: bool | None = None
     survives_background_erased: bool | None = None
+    object_erased_prediction: int | None = None
 
     @property
     def correct(self) -> bool:
@@ -133,13 +134,16 @@ def summarise_classes(images: list[ImageSummary], labels: tuple[str, ...], *,
     - ``small_area_rate``: share of correctly predicted images whose decisive area is
       at most :data:`SMALL_AREA`;
     - ``decisive_rate``: share whose decision moves within the 25% cap at all;
-    - ``box_agreement``: the largest share of the class's correctly predicted images
-      whose decisive boxes (of small decisive areas only) cover one common pixel;
+    - ``box_agreement``: among the correctly predicted images whose decision hinges on
+      a small region, the largest share whose decisive boxes cover one common pixel;
       ``place_box`` is where;
     - ``median_decisive_area``, ``mean_concentration``, ``mean_gini``,
       ``mean_deletion_area``, ``mean_insertion_area``;
     - with masks: ``median_background_share``, ``object_erased_survival`` (share of
       images still predicted as the class with the object erased),
+      ``erased_default_rate`` (share of the *other* classes' images predicted as this
+      class once their object is erased), ``background_reliance`` (the first less the
+      second),
       ``background_erased_survival``, ``masked_images`` and ``estimated_masks``.
     """
     shape = shape or (64, 64)
@@ -155,15 +159,24 @@ def summarise_classes(images: list[ImageSummary], labels: tuple[str, ...], *,
         boxes = [im.decisive_box for im in right
                  if im.small and _box_area(im.decisive_box) <= BOX_MAX_AREA]
         agreement, place_box = None, None
+        n_small = sum(1 for im in right if im.small)
         if right:
             if boxes:
                 pm = place_map(boxes, shape)
                 peak = pm.max()
-                agreement = float(peak / len(right))
+                agreement = float(peak / n_small)
                 place_box = box_of(pm >= max(1.0, 0.5 * peak))
             else:
                 agreement = 0.0
         masked = [im for im in members if im.background_share is not None]
+        survival = _rate([bool(im.survives_object_erased) for im in right
+                          if im.survives_object_erased is not None])
+        # How often erasing the object of *another* class's image leaves this class:
+        # a class the model names for an empty scene survives erasure for no reason
+        # of its own, so that share is taken off its survival.
+        erased_elsewhere = [im.object_erased_prediction == index for im in images
+                            if im.label != index and im.object_erased_prediction is not None]
+        default_rate = _rate(erased_elsewhere)
         metrics = {
             "small_area_rate": _rate([im.small for im in right]),
             "decisive_rate": _rate([im.decisive_area is not None for im in right]),
@@ -174,8 +187,10 @@ def summarise_classes(images: list[ImageSummary], labels: tuple[str, ...], *,
             "mean_deletion_area": float(np.nanmean([im.deletion_area for im in members])),
             "mean_insertion_area": float(np.nanmean([im.insertion_area for im in members])),
             "median_background_share": _median([im.background_share for im in masked]),
-            "object_erased_survival": _rate([bool(im.survives_object_erased) for im in right
-                                             if im.survives_object_erased is not None]),
+            "object_erased_survival": survival,
+            "erased_default_rate": default_rate,
+            "background_reliance": (survival - default_rate
+                                    if survival is not None and default_rate is not None else None),
             "background_erased_survival": _rate([bool(im.survives_background_erased) for im in right
                                                  if im.survives_background_erased is not None]),
             "masked_images": len(masked),

@@ -43,15 +43,17 @@ THRESHOLD_TABLE: tuple[tuple[str, float, str], ...] = (
     ("localized_margin", 0.25,
      "how far that share must exceed the median of the other classes (a fragile model is not a shortcut)"),
     ("fixed_agreement", 0.50,
-     "share of a class's correct images whose small decisive boxes cover one common place"),
+     "share of a class's small decisive regions that cover one common place"),
     ("fixed_margin", 0.25,
      "how far that agreement must exceed the median of the other classes"),
     ("background_share", 0.50,
      "median share of a class's positive heat that lies outside the object"),
     ("background_margin", 0.10,
      "how far that share must exceed the median of the other classes"),
-    ("background_survival", 0.50,
-     "share of a class's correct images still predicted as the class once the object is erased"),
+    ("background_reliance", 0.40,
+     "share of a class's images still predicted as the class with the object erased, less the share of other classes' erased images it gets"),
+    ("background_reliance_margin", 0.25,
+     "how far that reliance must exceed the median of the other classes"),
     ("motif_coverage", 0.30,
      "share of a class's images whose decisive crops fall in one cluster of near-alike crops"),
     ("motif_margin", 0.15,
@@ -81,7 +83,8 @@ class Thresholds:
     fixed_margin: float = 0.25
     background_share: float = 0.50
     background_margin: float = 0.10
-    background_survival: float = 0.50
+    background_reliance: float = 0.40
+    background_reliance_margin: float = 0.25
     motif_coverage: float = 0.30
     motif_margin: float = 0.15
     confirm_alpha: float = 0.01
@@ -162,8 +165,9 @@ class Finding:
                 "region": self.region, "evidence": self.evidence, "examples": list(self.examples)}
 
 
-def _others_median(classes: list[ClassSummary], me: ClassSummary, metric: str) -> float:
-    vals = [c.metrics.get(metric) for c in classes if c.index != me.index]
+def _others_median(classes: list[ClassSummary], me: ClassSummary, metric: str,
+                   exclude: frozenset[int] = frozenset()) -> float:
+    vals = [c.metrics.get(metric) for c in classes if c.index != me.index and c.index not in exclude]
     vals = [v for v in vals if v is not None]
     return float(np.median(vals)) if vals else 0.0
 
@@ -185,12 +189,15 @@ def judge(classes: list[ClassSummary], images: list[ImageSummary], *,
           thresholds: Thresholds | None = None, max_examples: int = 8) -> list[Finding]:
     """The suspect findings for each class (``recurring-motif`` is added by the scan).
 
-    Per class, in this order: ``fixed-position`` (a ``localized`` class whose small
-    decisive regions also agree in place; it stands for both), else ``localized``;
-    then ``background``.
+    Per class, in this order: ``fixed-position`` (a class whose decisions hinge on small
+    regions that agree in place; it stands for ``localized`` too), else ``localized``;
+    then, unless the class is fixed-position (whose heat outside the object is the mark
+    itself), ``background``: by the heat outside the object, or by the decisions that
+    survive erasing the object beyond what other classes' erased images give.
     """
     th = thresholds or Thresholds()
     found: list[Finding] = []
+    fixed_classes: set[int] = set()
     for cls in classes:
         m = cls.metrics
         if cls.correct < th.min_correct_images:
@@ -200,16 +207,19 @@ def judge(classes: list[ClassSummary], images: list[ImageSummary], *,
         small_others = _others_median(classes, cls, "small_area_rate")
         agreement = m["box_agreement"] or 0.0
         agree_others = _others_median(classes, cls, "box_agreement")
-        localized = small_rate >= th.localized_rate and small_rate - small_others >= th.localized_margin
-        if localized and agreement >= th.fixed_agreement and agreement - agree_others >= th.fixed_margin:
-            members = [im for im in mine if im.decisive_box is not None
-                       and _overlaps(im.decisive_box, cls.place_box)]
+        hinges = small_rate >= th.localized_rate
+        localized = hinges and small_rate - small_others >= th.localized_margin
+        fixed = (hinges and agreement >= th.fixed_agreement
+                 and agreement - agree_others >= th.fixed_margin)
+        if fixed:
+            members = [im for im in mine if im.small and _overlaps(im.decisive_box, cls.place_box)]
             members.sort(key=lambda im: (im.decisive_area, im.path))
             found.append(Finding(
                 id="", class_name=cls.name, class_index=cls.index, kind="fixed-position",
                 region=cls.place_box,
                 evidence=_evidence("box_agreement", agreement, th.fixed_agreement, agree_others,
                                    th.fixed_margin, small_area_rate=small_rate,
+                                   small_area_threshold=th.localized_rate,
                                    images=len(mine), agreeing_images=len(members)),
                 examples=tuple(im.path for im in members[:max_examples])))
         elif localized:
@@ -221,23 +231,44 @@ def judge(classes: list[ClassSummary], images: list[ImageSummary], *,
                                    flipping_images=len(members),
                                    median_decisive_area=m["median_decisive_area"]),
                 examples=tuple(im.path for im in members[:max_examples])))
+        if fixed:
+            fixed_classes.add(cls.index)
+    # Backgrounds, judged after the marks: a fixed-position class's heat outside the
+    # object is the mark itself (one finding, one cause), and such a class is no
+    # reference for how much the other classes rely on their backdrops.
+    marked = frozenset(fixed_classes)
+    for cls in classes:
+        m = cls.metrics
+        if cls.correct < th.min_correct_images or cls.index in marked:
+            continue
+        mine = [im for im in images if im.label == cls.index and im.correct]
         share = m.get("median_background_share")
-        survival = m.get("object_erased_survival")
-        if share is not None and survival is not None:
-            share_others = _others_median(classes, cls, "median_background_share")
-            if (share >= th.background_share and share - share_others >= th.background_margin
-                    and survival >= th.background_survival):
-                members = sorted([im for im in mine if im.background_share is not None],
-                                 key=lambda im: (-im.background_share, im.path))
-                found.append(Finding(
-                    id="", class_name=cls.name, class_index=cls.index, kind="background", region=None,
-                    evidence=_evidence("median_background_share", share, th.background_share,
-                                       share_others, th.background_margin,
-                                       object_erased_survival=survival,
-                                       survival_threshold=th.background_survival,
-                                       masked_images=m["masked_images"],
-                                       estimated_masks=m["estimated_masks"],
-                                       mask="estimated" if m["estimated_masks"] == m["masked_images"]
-                                       else ("given" if m["estimated_masks"] == 0 else "given and estimated")),
-                    examples=tuple(im.path for im in members[:max_examples])))
+        reliance = m.get("background_reliance")
+        if share is None and reliance is None:
+            continue
+        share_others = _others_median(classes, cls, "median_background_share", marked)
+        reliance_others = _others_median(classes, cls, "background_reliance", marked)
+        by_share = (share is not None and share >= th.background_share
+                    and share - share_others >= th.background_margin)
+        by_reliance = (reliance is not None and reliance >= th.background_reliance
+                       and reliance - reliance_others >= th.background_reliance_margin)
+        if by_share or by_reliance:
+            members = sorted([im for im in mine if im.background_share is not None],
+                             key=lambda im: (-(im.survives_object_erased or False),
+                                             -im.background_share, im.path))
+            if by_share:
+                ev = _evidence("median_background_share", share, th.background_share,
+                               share_others, th.background_margin)
+            else:
+                ev = _evidence("background_reliance", reliance, th.background_reliance,
+                               reliance_others, th.background_reliance_margin)
+            ev.update(median_background_share=share, background_reliance=reliance,
+                      object_erased_survival=m.get("object_erased_survival"),
+                      erased_default_rate=m.get("erased_default_rate"),
+                      masked_images=m["masked_images"], estimated_masks=m["estimated_masks"],
+                      mask="estimated" if m["estimated_masks"] == m["masked_images"]
+                      else ("given" if m["estimated_masks"] == 0 else "given and estimated"))
+            found.append(Finding(
+                id="", class_name=cls.name, class_index=cls.index, kind="background", region=None,
+                evidence=ev, examples=tuple(im.path for im in members[:max_examples])))
     return found

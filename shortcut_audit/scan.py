@@ -182,6 +182,7 @@ def _record_from_stats(path: str, label: int, stats: ImageStats, probs: np.ndarr
         "background_share": stats.background_share, "mask_source": stats.mask_source,
         "survives_object_erased": stats.survives_object_erased,
         "survives_background_erased": stats.survives_background_erased,
+        "object_erased_prediction": stats.object_erased_prediction,
         "passes": stats.passes,
     }
 
