@@ -125,6 +125,20 @@ BatchOpt = typer.Option(None, "--batch-size", min=1, help="Images per model call
                         rich_help_panel=MODEL_HELP)
 
 
+PlanOpt = typer.Option(PlanKind.grid, "--plan", help="Where to hide.", rich_help_panel=PLAN_HELP)
+PatchOpt = typer.Option(None, "--patch", help="Patch side: pixels (8) or fraction (0.125).", rich_help_panel=PLAN_HELP)
+StrideOpt = typer.Option(None, "--stride", help="Grid step [default: half the patch].", rich_help_panel=PLAN_HELP)
+CountOpt = typer.Option(None, "--count", help="Patches or masks (random, rise).", rich_help_panel=PLAN_HELP)
+MinSizeOpt = typer.Option(None, "--min-size", help="Smallest random patch.", rich_help_panel=PLAN_HELP)
+MaxSizeOpt = typer.Option(None, "--max-size", help="Largest random patch.", rich_help_panel=PLAN_HELP)
+CellsOpt = typer.Option(8, "--cells", help="RISE grid cells per side.", rich_help_panel=PLAN_HELP)
+KeepOpt = typer.Option(0.5, "--keep", help="RISE keep probability.", rich_help_panel=PLAN_HELP)
+FillOpt = typer.Option(FillKind.mean, "--fill", help="What hidden pixels become.", rich_help_panel=PLAN_HELP)
+FillValueOpt = typer.Option(127.5, "--fill-value", help="Value for --fill constant (0..255).", rich_help_panel=PLAN_HELP)
+SeedOpt = typer.Option(0, "--seed", help="Seed of everything random.", rich_help_panel=PLAN_HELP)
+ScoreOpt = typer.Option(Score.prob, "--score", help="Score whose drop is mapped.", rich_help_panel=PLAN_HELP)
+
+
 def model_config(labels, config, layout, size, scale, mean, std, channels, resize, output,
                  threads, batch_size) -> ModelConfig:
     """Command-line model options merged over a --model-config file."""
@@ -273,18 +287,11 @@ def heatmap(
     model: Path = typer.Option(..., "--model", "-m", help="The .onnx file.", exists=True, dir_okay=False),
     out_dir: Path = typer.Option(..., "--out", "-o", help="Output folder.", file_okay=False),
     target: Optional[str] = typer.Option(None, "--target", help="Class to explain (name) [default: the prediction]."),
-    plan: PlanKind = typer.Option(PlanKind.grid, "--plan", help="Where to hide.", rich_help_panel=PLAN_HELP),
-    patch: Optional[str] = typer.Option(None, "--patch", help="Patch side: pixels (8) or fraction (0.125).", rich_help_panel=PLAN_HELP),
-    stride: Optional[str] = typer.Option(None, "--stride", help="Grid step [default: half the patch].", rich_help_panel=PLAN_HELP),
-    count: Optional[int] = typer.Option(None, "--count", help="Patches or masks (random, rise).", rich_help_panel=PLAN_HELP),
-    min_size: Optional[str] = typer.Option(None, "--min-size", rich_help_panel=PLAN_HELP, help="Smallest random patch."),
-    max_size: Optional[str] = typer.Option(None, "--max-size", rich_help_panel=PLAN_HELP, help="Largest random patch."),
-    cells: int = typer.Option(8, "--cells", help="RISE grid cells per side.", rich_help_panel=PLAN_HELP),
-    keep: float = typer.Option(0.5, "--keep", help="RISE keep probability.", rich_help_panel=PLAN_HELP),
-    fill: FillKind = typer.Option(FillKind.mean, "--fill", help="What hidden pixels become.", rich_help_panel=PLAN_HELP),
-    fill_value: float = typer.Option(127.5, "--fill-value", help="Value for --fill constant (0..255).", rich_help_panel=PLAN_HELP),
-    seed: int = typer.Option(0, "--seed", help="Seed of everything random.", rich_help_panel=PLAN_HELP),
-    score: Score = typer.Option(Score.prob, "--score", help="Score whose drop is mapped.", rich_help_panel=PLAN_HELP),
+    plan: PlanKind = PlanOpt, patch: Optional[str] = PatchOpt, stride: Optional[str] = StrideOpt,
+    count: Optional[int] = CountOpt, min_size: Optional[str] = MinSizeOpt,
+    max_size: Optional[str] = MaxSizeOpt, cells: int = CellsOpt, keep: float = KeepOpt,
+    fill: FillKind = FillOpt, fill_value: float = FillValueOpt, seed: int = SeedOpt,
+    score: Score = ScoreOpt,
     labels: Optional[Path] = LabelsOpt, config: Optional[Path] = ConfigOpt,
     layout: Optional[Layout] = LayoutOpt, size: Optional[str] = SizeOpt,
     scale: Optional[float] = ScaleOpt, mean: Optional[str] = MeanOpt, std: Optional[str] = StdOpt,
@@ -329,18 +336,11 @@ def scan(
     manifest: Optional[Path] = typer.Option(None, "--manifest", help="CSV with path,label[,mask].",
                                             exists=True, dir_okay=False),
     per_class: Optional[int] = typer.Option(None, "--per-class", min=1, help="At most this many images a class."),
-    plan: PlanKind = typer.Option(PlanKind.grid, "--plan", help="Where to hide.", rich_help_panel=PLAN_HELP),
-    patch: Optional[str] = typer.Option(None, "--patch", help="Patch side: pixels (8) or fraction (0.125).", rich_help_panel=PLAN_HELP),
-    stride: Optional[str] = typer.Option(None, "--stride", help="Grid step [default: half the patch].", rich_help_panel=PLAN_HELP),
-    count: Optional[int] = typer.Option(None, "--count", help="Patches or masks (random, rise).", rich_help_panel=PLAN_HELP),
-    min_size: Optional[str] = typer.Option(None, "--min-size", rich_help_panel=PLAN_HELP, help="Smallest random patch."),
-    max_size: Optional[str] = typer.Option(None, "--max-size", rich_help_panel=PLAN_HELP, help="Largest random patch."),
-    cells: int = typer.Option(8, "--cells", help="RISE grid cells per side.", rich_help_panel=PLAN_HELP),
-    keep: float = typer.Option(0.5, "--keep", help="RISE keep probability.", rich_help_panel=PLAN_HELP),
-    fill: FillKind = typer.Option(FillKind.mean, "--fill", help="What hidden pixels become.", rich_help_panel=PLAN_HELP),
-    fill_value: float = typer.Option(127.5, "--fill-value", help="Value for --fill constant (0..255).", rich_help_panel=PLAN_HELP),
-    seed: int = typer.Option(0, "--seed", help="Seed of everything random.", rich_help_panel=PLAN_HELP),
-    score: Score = typer.Option(Score.prob, "--score", help="Score whose drop is mapped.", rich_help_panel=PLAN_HELP),
+    plan: PlanKind = PlanOpt, patch: Optional[str] = PatchOpt, stride: Optional[str] = StrideOpt,
+    count: Optional[int] = CountOpt, min_size: Optional[str] = MinSizeOpt,
+    max_size: Optional[str] = MaxSizeOpt, cells: int = CellsOpt, keep: float = KeepOpt,
+    fill: FillKind = FillOpt, fill_value: float = FillValueOpt, seed: int = SeedOpt,
+    score: Score = ScoreOpt,
     confirm: bool = typer.Option(True, "--confirm/--no-confirm", help="Run the counterfactual tests on suspects."),
     probe_budget: int = typer.Option(40, "--probe-budget", min=4, help="Images per counterfactual test."),
     thresholds_file: Optional[Path] = typer.Option(None, "--thresholds", help="TOML file of threshold overrides.",
