@@ -38,6 +38,7 @@ STATISTIC_NAMES = {
     "box_agreement": "decisive boxes agreeing on one place",
     "small_area_rate": "decision moved by hiding at most 5%",
     "median_background_share": "heat outside the object (median)",
+    "background_reliance": "answers kept with the object erased, beyond the empty-scene rate",
     "motif_coverage": "images in the motif's cluster",
     "coverage": "images in the motif's cluster",
 }
@@ -158,10 +159,18 @@ def finding_sentence(finding: dict) -> str:
                 f"stamp, that the model may have learned in place of the object.")
     if kind == "background":
         survival = ev.get("object_erased_survival")
+        default = ev.get("erased_default_rate")
+        share = ev.get("median_background_share", ev.get("value") if ev.get("statistic") == "median_background_share" else None)
+        if ev.get("statistic") == "background_reliance":
+            return (f"Erase the object and the model still answers {cls} for {pct(survival)} of "
+                    f"the images, while only {pct(default)} of other classes' images with their "
+                    f"object erased become {cls}: the model reads the surroundings, not the piece "
+                    f"(heat outside the object: {pct(share)}, a backdrop spread everywhere moves "
+                    f"little when one patch of it is hidden).")
         tail = (f", and the answer stays {cls} in {pct(survival)} of the images once the object "
                 f"is erased" if _finite(survival) else "")
         return (f"Most of what moves the model's answer for {cls} lies outside the object "
-                f"({pct(ev.get('value'))} of the heat){tail}: the model reads the surroundings, "
+                f"({pct(share)} of the heat){tail}: the model reads the surroundings, "
                 f"not the piece.")
     return f"The model's answers for {cls} depend on a pattern the rules flagged ({kind})."
 
