@@ -25,7 +25,7 @@ measurement; the *before* values equal the audit's class metrics):
 
 A difference whose 95% interval excludes zero is a ``change``; otherwise ``no clear
 change``. Findings of either audit are matched by class and kind and get a verdict:
-``resolved``, ``weakened``, ``persists``, ``new`` or ``unclear`` (see
+``resolved``, ``weakened``, ``persists``, ``new``, ``unclear`` or ``cleared`` (see
 :data:`VERDICTS`).
 
 The bootstrap is the percentile bootstrap (Efron and Tibshirani, "An Introduction to
@@ -95,7 +95,10 @@ VERDICTS: dict[str, str] = {
     "persists": "present before and after, its statistic not clearly lower",
     "weakened": "present before and after, its statistic clearly lower",
     "unclear": "absent after, but its statistic is not clearly lower: it may only have slipped under the threshold",
-    "resolved": "present before, absent after, and its statistic clearly lower",
+    "resolved": "present before, absent after (or cleared by its counterfactual test after, "
+                "with a clearly lower test rate), and its statistic or test rate clearly lower",
+    "cleared": "never confirmed: its counterfactual test cleared it before, and after it is "
+               "absent or cleared again",
 }
 
 _KIND_STATISTIC = {"localized": "small_area_rate", "fixed-position": "box_agreement",
@@ -730,10 +733,18 @@ def compare_audits(before: dict, after: dict, *, seed: int = 0, resamples: int =
 
 def _finding(name: str, kind: str, fb: dict | None, fa: dict | None, sd: Difference,
              tests: tuple[Difference, ...]) -> FindingComparison:
-    if fb is None:
+    test_lower = any(t.name == "test_rate" and t.clearly_lower for t in tests)
+    cleared_after = fa is not None and fa.get("status") == "not-confirmed"
+    if fb is not None and fb.get("status") == "not-confirmed" and (fa is None or cleared_after):
+        verdict = "cleared"
+    elif fb is None:
         verdict = "new"
     elif fa is None:
         verdict = "resolved" if sd.clearly_lower else "unclear"
+    elif cleared_after and fb.get("status") == "confirmed" and test_lower:
+        # The heatmap statistic may stay (a class can hinge on a small part of the
+        # object itself), but the region no longer carries the class: the test says so.
+        verdict = "resolved"
     else:
         verdict = "weakened" if sd.clearly_lower else "persists"
     examples: list[str] = []

@@ -188,11 +188,15 @@ def test_background_share_median_and_transplant_rates():
     r = compare_audits(_audit(before, fb), _audit(after, []), resamples=1000)
     f = r.findings[0]
     assert f.verdict == "resolved"
+    # cleared before, absent after: never a shortcut
+    cleared = [dict(fb[0], status="not-confirmed")]
+    assert compare_audits(_audit(before, cleared), _audit(after, []), resamples=200).findings[0].verdict == "cleared"
     assert (f.statistic.before, f.statistic.after) == pytest.approx((0.8, 0.2))
     assert f.statistic.high < 0 and f.statistic.images == 6
+    # present after but cleared by its test, whose rate fell clearly: resolved
     r = compare_audits(_audit(before, fb), _audit(after, fa), resamples=1000)
     f = r.findings[0]
-    assert f.verdict == "weakened"
+    assert f.verdict == "resolved"
     rate = next(t for t in f.tests if t.name == "test_rate")
     assert rate.difference == pytest.approx(-0.8) and rate.high < 0
     control = next(t for t in f.tests if t.name == "control_rate")

@@ -45,8 +45,8 @@ _SHORT = {"box_agreement": "box agreement", "small_area_rate": "decisive-area ra
           "median_background_share": "background share", "motif_coverage": "motif coverage"}
 #: The chip style of base.html.j2 for each verdict (the word is always shown too).
 _CHIPS = {"new": "confirmed", "persists": "suspect", "weakened": "suspect", "unclear": "not-confirmed",
-          "resolved": "clean"}
-_VERDICT_ORDER = ("new", "persists", "weakened", "unclear", "resolved")
+          "resolved": "clean", "cleared": "clean"}
+_VERDICT_ORDER = ("new", "persists", "weakened", "unclear", "resolved", "cleared")
 
 
 # ------------------------------------------------------------------------ figures
@@ -258,7 +258,11 @@ def _sentence(f) -> str:
     what = f"{f.class_name}, {_KIND_TITLES.get(f.kind, f.kind)}"
     move = f"{_SHORT.get(d.name, d.label)} {_pct(d.before)} → {_pct(d.after)}"
     if f.verdict == "resolved":
+        if f.after_status == "not-confirmed":
+            return f"Removed: {what}; still flagged by the heatmap rules, but its test now clears it ({move})."
         return f"Removed: {what} ({move})."
+    if f.verdict == "cleared":
+        return f"Never a confirmed shortcut: {what}; its test cleared it ({move})."
     if f.verdict == "new":
         return f"New: {what} ({move})."
     if f.verdict == "weakened":
