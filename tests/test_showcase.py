@@ -1,0 +1,66 @@
+"""The whole job on the shipped demo, checked against the demo's planted truth.
+
+Reference: demo_images/truth.json, whose effects test_demo.py re-measures from the
+shipped models (pasting the shipped stamp, sticker and table). The planted shortcuts:
+a mark at the lower right of vases (fixed-position), a price sticker on mugs (roaming),
+a wood table under bowls (background); plates clean.
+"""
+
+import json
+
+import pytest
+
+from shortcut_audit.showcase import run_demo
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory):
+    out = tmp_path_factory.mktemp("demo")
+    return out, run_demo(out)
+
+
+def _kinds(audit, cls, statuses=("suspect", "confirmed")):
+    return {f.kind: f for f in audit.findings if f.class_name == cls and f.status in statuses}
+
+
+def test_baseline_finds_every_planted_shortcut(demo):
+    _, r = demo
+    base = r["audits"]["baseline"]
+    vase = _kinds(base, "vase")
+    assert "fixed-position" in vase
+    x0, y0, x1, y1 = vase["fixed-position"].region
+    assert x0 >= 0.5 and y0 >= 0.5                      # in the lower-right quarter
+    assert "background" in _kinds(base, "bowl")
+    assert {"localized", "recurring-motif"} & set(_kinds(base, "mug"))
+    assert _kinds(base, "plate") == {}                  # plate is clean (a suspicion may be cleared)
+
+
+def test_baseline_statuses_match_the_measured_truth(demo):
+    _, r = demo
+    base = r["audits"]["baseline"]
+    assert _kinds(base, "vase", ("confirmed",))["fixed-position"].evidence["test"]["test"] == "transplant"
+    mug = _kinds(base, "mug", ("confirmed",))
+    assert mug and all(f.evidence["test"]["test"] == "transplant" for f in mug.values())
+    assert _kinds(base, "bowl", ("confirmed",))["background"].evidence["test"]["test"] == "background-swap"
+
+
+def test_rebalanced_has_nothing_confirmed_or_suspect(demo):
+    _, r = demo
+    assert [f for f in r["audits"]["rebalanced"].findings if f.status != "not-confirmed"] == []
+
+
+def test_baseline_against_rebalanced_resolves_every_planted_finding(demo):
+    _, r = demo
+    verdicts = {(f.class_name, f.kind): f.verdict for f in r["comparisons"]["rebalanced"].findings}
+    planted = [key for key in verdicts if key[0] in ("vase", "mug", "bowl")]
+    assert {k[0] for k in planted} == {"vase", "mug", "bowl"}
+    assert all(verdicts[k] == "resolved" for k in planted), verdicts
+
+
+def test_demo_writes_reports_and_the_pack(demo):
+    out, r = demo
+    for path in r["reports"].values():
+        assert path.exists() and path.stat().st_size > 10_000
+    assert r["pack"] is not None and r["pack"].exists()
+    truth = json.loads((out / "baseline" / "audit.json").read_text())
+    assert truth["dataset"]["audited"] == 144 and truth["skipped"] == []
