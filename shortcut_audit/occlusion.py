@@ -1,7 +1,8 @@
 """Occlusion plans and fills: which parts of an image to hide, and with what.
 
 A *plan* says where to hide: a sliding grid of square patches, randomly placed patches,
-or random smooth masks in the manner of RISE (Petsiuk, Das and Saenko, BMVC 2018). A
+random smooth masks in the manner of RISE (Petsiuk, Das and Saenko, BMVC 2018), or an
+adaptive coarse-to-fine grid (:class:`AdaptivePlan`, run by :mod:`.adaptive`). A
 *fill* says what to put there: a constant value, the image's mean colour, a Gaussian
 blur of the image, or seeded noise.
 
@@ -28,6 +29,7 @@ __all__ = [
     "GridPlan",
     "RandomPatchPlan",
     "SmoothMaskPlan",
+    "AdaptivePlan",
     "Plan",
     "Fill",
     "FILL_KINDS",
@@ -39,6 +41,7 @@ __all__ = [
     "box_weights",
     "fill_image",
     "perturb",
+    "paste_boxes",
 ]
 
 
@@ -148,7 +151,91 @@ class SmoothMaskPlan:
                 "keep": self.keep, "seed": self.seed}
 
 
-Plan = Union[GridPlan, RandomPatchPlan, SmoothMaskPlan]
+@dataclass(frozen=True, kw_only=True)
+class AdaptivePlan:
+    """A coarse grid first, then fine patches only where the coarse map says the score moves.
+
+    The fine patches are those of ``GridPlan(patch=fine, stride=fine_stride)``; the
+    heatmap has the units and the smoothing of that exhaustive grid, with the drops of
+    the patches never run estimated from the coarse map (see :mod:`.adaptive`).
+
+    Parameters
+    ----------
+    coarse, coarse_stride : int or float
+        Coarse patch and stride (pixels, or fractions of each side); the stride
+        defaults to the patch (a tiling).
+    fine, fine_stride : int or float
+        Fine patch and stride: the exhaustive grid the heatmap stands for.
+    budget : int, optional
+        Forward passes per image at most, the unperturbed one included; by default a
+        quarter of the exhaustive fine grid's passes.
+    keep_top : float
+        Share of the fine patches that may be run at most, hottest first.
+    tolerance : float
+        Refinement stops once no fine patch left is predicted to move the score by
+        more than ``tolerance`` times the largest move measured; 0 (the default)
+        spends the whole budget.
+
+    >>> AdaptivePlan(budget=40).to_dict()["kind"]
+    'adaptive'
+    """
+
+    coarse: int | float = 0.25
+    coarse_stride: int | float | None = None
+    fine: int | float = 0.125
+    fine_stride: int | float = 0.0625
+    budget: int | None = None
+    keep_top: float = 0.5
+    tolerance: float = 0.0
+
+    def __post_init__(self) -> None:
+        _check_size(self.coarse, "--coarse")
+        if self.coarse_stride is not None:
+            _check_size(self.coarse_stride, "--coarse-stride")
+        _check_size(self.fine, "--fine")
+        _check_size(self.fine_stride, "--fine-stride")
+        if self.budget is not None and (isinstance(self.budget, bool) or not isinstance(self.budget, int)
+                                        or self.budget < 2):
+            raise UsageError(
+                f"--budget must be a whole number of passes per image, at least 2; got {self.budget!r}. "
+                "Leave it out for a quarter of the exhaustive grid's passes."
+            )
+        if isinstance(self.keep_top, bool) or not isinstance(self.keep_top, (int, float)) or not (
+                0.0 < float(self.keep_top) <= 1.0):
+            raise UsageError(f"--keep-top must be a share of the fine patches in (0, 1]; got {self.keep_top!r}.")
+        if isinstance(self.tolerance, bool) or not isinstance(self.tolerance, (int, float)) or not (
+                0.0 <= float(self.tolerance) < 1.0):
+            raise UsageError(f"--tolerance must be in [0, 1); got {self.tolerance!r}. Pass e.g. 0.02, or 0 to "
+                             "spend the whole budget.")
+
+    kind = "adaptive"
+
+    def to_dict(self) -> dict:
+        return {"kind": self.kind, "coarse": self.coarse, "coarse_stride": self.coarse_stride,
+                "fine": self.fine, "fine_stride": self.fine_stride, "budget": self.budget,
+                "keep_top": self.keep_top, "tolerance": self.tolerance}
+
+    def coarse_plan(self) -> GridPlan:
+        """The coarse grid, as a :class:`GridPlan`."""
+        return GridPlan(patch=self.coarse, stride=self.coarse if self.coarse_stride is None else self.coarse_stride)
+
+    def fine_plan(self) -> GridPlan:
+        """The exhaustive grid this plan stands for, as a :class:`GridPlan`."""
+        return GridPlan(patch=self.fine, stride=self.fine_stride)
+
+    def max_passes(self, height: int, width: int) -> int:
+        """Forward passes per image at most, the unperturbed one included.
+
+        >>> AdaptivePlan().max_passes(64, 64)    # 225 fine patches + 1, a quarter
+        56
+        """
+        if self.budget is not None:
+            return self.budget
+        exhaustive = len(patch_boxes(self.fine_plan(), height, width)) + 1
+        return max(2, exhaustive // 4)
+
+
+Plan = Union[GridPlan, RandomPatchPlan, SmoothMaskPlan, AdaptivePlan]
 
 FILL_KINDS = ("constant", "mean", "blur", "noise")
 
@@ -194,7 +281,8 @@ def plan_from_dict(data: dict) -> Plan:
     """The plan described by ``to_dict()`` output (as stored in audit.json)."""
     data = dict(data)
     kind = data.pop("kind", None)
-    classes = {"grid": GridPlan, "random": RandomPatchPlan, "rise": SmoothMaskPlan}
+    classes = {"grid": GridPlan, "random": RandomPatchPlan, "rise": SmoothMaskPlan,
+               "adaptive": AdaptivePlan}
     if kind not in classes:
         raise UsageError(f"plan kind must be one of {', '.join(classes)}; got {kind!r}.")
     return classes[kind](**data)
@@ -272,9 +360,11 @@ def patch_boxes(plan: Plan, height: int, width: int) -> np.ndarray:
 
 
 def pass_count(plan: Plan, height: int, width: int) -> int:
-    """How many perturbed images the plan makes for one image."""
+    """How many perturbed images the plan makes for one image (at most, for an adaptive plan)."""
     if isinstance(plan, SmoothMaskPlan):
         return plan.count
+    if isinstance(plan, AdaptivePlan):
+        return plan.max_passes(height, width) - 1
     return len(patch_boxes(plan, height, width))
 
 
@@ -393,3 +483,36 @@ def perturb(image: np.ndarray, weights: np.ndarray, filled: np.ndarray) -> np.nd
     """
     delta = (filled - image)[None]
     return image[None] + weights[..., None] * delta
+
+
+def paste_boxes(image: np.ndarray, boxes: np.ndarray, filled: np.ndarray) -> np.ndarray:
+    """Perturbed images for box patches, the same numbers as :func:`perturb` with
+    :func:`box_weights`, made by pasting.
+
+    ``perturb`` computes ``image + m * (filled - image)``; with ``m`` 0 or 1 that is
+    ``image`` outside a box and ``image + (filled - image)`` inside, which this function
+    writes directly, without the (k, H, W) weights or the (k, H, W, C) products.
+
+    Parameters
+    ----------
+    image : (H, W, C) float32
+    boxes : (k, 4) int array
+        ``[row0, row1, col0, col1]`` per patch, half-open (from :func:`patch_boxes`).
+    filled : (H, W, C) float32, from :func:`fill_image`
+
+    Returns
+    -------
+    batch : (k, H, W, C) float32
+
+    >>> img = np.zeros((2, 2, 1), np.float32); f = np.full_like(img, 9.0)
+    >>> paste_boxes(img, np.array([[0, 1, 0, 2]]), f)[0, ..., 0].tolist()
+    [[9.0, 9.0], [0.0, 0.0]]
+    """
+    image = np.asarray(image, dtype=np.float32)
+    hidden = image + (np.asarray(filled, dtype=np.float32) - image)
+    boxes = np.asarray(boxes)
+    out = np.empty((len(boxes),) + image.shape, dtype=np.float32)
+    out[...] = image
+    for i, (r0, r1, c0, c1) in enumerate(boxes):
+        out[i, r0:r1, c0:c1] = hidden[r0:r1, c0:c1]
+    return out

@@ -33,7 +33,8 @@ from scipy import ndimage
 
 from .engine import Job, run_job
 from .errors import ImageSkip, UsageError
-from .occlusion import Fill, Plan, SmoothMaskPlan, fill_image, iter_weights, pass_count, perturb
+from .occlusion import (AdaptivePlan, Fill, Plan, RandomPatchPlan, SmoothMaskPlan, fill_image,
+                        iter_weights, pass_count, perturb)
 
 __all__ = [
     "Heatmap",
@@ -82,6 +83,12 @@ class Heatmap:
         Forward passes used, the unperturbed one included.
     coverage : float
         Share of pixels hidden by at least one patch (1.0 for grids and smooth masks).
+    tolerance : float or None
+        The early-stopping tolerance of a random plan (None when it ran to its count);
+        ``passes - 1`` is then the number of masks used.
+    error_estimate : float or None
+        With early stopping: the estimated relative error of the map when it stopped
+        (see :func:`heatmap_job`).
     """
 
     values: np.ndarray
@@ -89,6 +96,8 @@ class Heatmap:
     base_scores: np.ndarray
     passes: int
     coverage: float = 1.0
+    tolerance: float | None = None
+    error_estimate: float | None = None
 
     @property
     def base_score(self) -> float:
@@ -133,13 +142,71 @@ def rise_heatmap(score_sum: np.ndarray, score_mean: float, n: int, keep: float) 
     return ((estimator - score_mean) / (1.0 - keep)).astype(np.float32)
 
 
+#: Early stopping: consecutive checks the error estimate must stay below the tolerance.
+EARLY_STOP_PATIENCE = 4
+
+
+def _relative_error(values: np.ndarray, earlier: np.ndarray, n: int, m: int) -> float:
+    """Estimated relative error of a Monte Carlo map after ``n`` masks, from the map after
+    the first ``m < n`` of them.
+
+    When the map is a mean of independent draws of variance ``sigma^2``, the maps after
+    ``m`` and ``n`` draws differ by ``E|H_n - H_m|^2 = sigma^2 (1/m - 1/n)``, while the error
+    of ``H_n`` is ``sigma^2 / n``; so ``|H_n - H_m| / sqrt(n/m - 1)`` estimates
+    ``|H_n - H|`` (for ``m = n/2``, simply ``|H_n - H_m|``), reported relative to
+    ``|H_n|`` (Frobenius norms).
+    """
+    norm = float(np.linalg.norm(values))
+    if norm == 0.0 or not 0 < m < n:
+        return math.inf
+    return float(np.linalg.norm(values - earlier)) / math.sqrt(n / m - 1.0) / norm
+
+
 def heatmap_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None = None,
-                chunk: int = 64) -> Job:
+                chunk: int = 64, tolerance: float | None = None) -> Job:
     """A job that returns the :class:`Heatmap` of ``image``.
 
     The first request holds the unperturbed image and the first chunk of perturbations,
-    so a batch is never spent on one image alone.
+    so a batch is never spent on one image alone. An adaptive plan is handed to
+    :func:`shortcut_audit.adaptive.adaptive_job`.
+
+    Parameters
+    ----------
+    image : (H, W, C) float32, 0..255
+    plan : Plan
+    fill : Fill
+    target : int, optional
+        Class to explain; the unperturbed prediction when omitted.
+    chunk : int
+        Most masks in one request.
+    tolerance : float, optional, keyword-only
+        Early stopping, for random plans (random patches, smooth masks) only. After each
+        chunk (``n`` masks so far) the map is compared with the map it was when it had at
+        most half as many masks (``m``, kept at chunk, 2 chunks, 4 chunks...): their
+        relative change, divided by ``sqrt(n/m - 1)``, estimates the map's remaining
+        relative error (:func:`_relative_error`). Once that estimate has been below
+        ``tolerance`` for ``EARLY_STOP_PATIENCE`` chunks in a row no more masks are added.
+        The plan's count is the cap. Off (None) by default; the heatmap records the
+        tolerance and the estimate, and ``passes`` the masks used.
+
+    Raises
+    ------
+    UsageError
+        A tolerance with a grid or adaptive plan, or outside (0, 1).
     """
+    if isinstance(plan, AdaptivePlan):
+        if tolerance is not None:
+            raise UsageError("early stopping (tolerance) applies to random plans; an adaptive plan "
+                             "has its own tolerance. Leave tolerance out.")
+        from .adaptive import adaptive_job
+
+        return (yield from adaptive_job(image, plan=plan, fill=fill, target=target, chunk=chunk))
+    if tolerance is not None:
+        if not isinstance(plan, (RandomPatchPlan, SmoothMaskPlan)):
+            raise UsageError("early stopping (tolerance) applies to random plans (random patches, smooth "
+                             "masks); a grid runs every patch. Leave tolerance out or use a random plan.")
+        if isinstance(tolerance, bool) or not isinstance(tolerance, (int, float)) or not (0.0 < tolerance < 1.0):
+            raise UsageError(f"tolerance must be a relative error in (0, 1), e.g. 0.05; got {tolerance!r}.")
     image = _check_image(image)
     h, w, _ = image.shape
     filled = fill_image(image, fill)
@@ -150,6 +217,10 @@ def heatmap_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None
     score_total = 0.0
     base = None
     t = target
+    used = 0
+    snapshots: list[tuple[int, np.ndarray]] = []   # (masks, map) at chunk * 2**j masks
+    calm = 0
+    estimate = None
     for weights in iter_weights(plan, h, w, chunk=chunk):
         batch = perturb(image, weights, filled)
         if base is None:
@@ -173,6 +244,19 @@ def heatmap_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None
             wts = weights.astype(np.float64)
             acc += np.tensordot(drop, wts, axes=1)
             cover += wts.sum(axis=0)
+        used += len(weights)
+        if tolerance is not None and used < total:
+            current = _running_map(acc, cover, score_total, used, plan)
+            half = [(m, v) for m, v in snapshots if 2 * m <= used]
+            if half:
+                estimate = _relative_error(current, half[-1][1], used, half[-1][0])
+                calm = calm + 1 if estimate < tolerance else 0
+                if calm >= EARLY_STOP_PATIENCE:
+                    break
+            if not snapshots or used >= 2 * snapshots[-1][0]:
+                snapshots.append((used, current))
+    if tolerance is not None:
+        total = used    # the masks used; the plan's count when it never stopped early
     if rise:
         values = rise_heatmap(acc, score_total / total, total, plan.keep)
         coverage = 1.0
@@ -182,11 +266,24 @@ def heatmap_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None
         values[covered] = (acc[covered] / cover[covered]).astype(np.float32)
         coverage = float(covered.mean())
     return Heatmap(values=values, target=int(t), base_scores=np.asarray(base, np.float32),
-                   passes=total + 1, coverage=coverage)
+                   passes=total + 1, coverage=coverage, tolerance=tolerance,
+                   error_estimate=estimate if tolerance is not None else None)
+
+
+def _running_map(acc: np.ndarray, cover: np.ndarray, score_total: float, n: int, plan: Plan) -> np.ndarray:
+    """The heatmap after ``n`` masks, as :func:`heatmap_job` would return it (float64)."""
+    if isinstance(plan, SmoothMaskPlan):
+        estimator = acc / (n * plan.keep)
+        return (estimator - score_total / n) / (1.0 - plan.keep)
+    values = np.zeros_like(acc)
+    covered = cover > 0
+    values[covered] = acc[covered] / cover[covered]
+    return values
 
 
 def occlusion_heatmap(scorer, image: np.ndarray, *, plan: Plan, fill: Fill,
-                      target: int | None = None, batch_size: int = 64) -> Heatmap:
+                      target: int | None = None, batch_size: int = 64,
+                      tolerance: float | None = None) -> Heatmap:
     """The heatmap of one image, computed with ``scorer``.
 
     Parameters
@@ -198,6 +295,8 @@ def occlusion_heatmap(scorer, image: np.ndarray, *, plan: Plan, fill: Fill,
     fill : Fill
     target : int, optional
         Class to explain; the unperturbed prediction when omitted.
+    tolerance : float, optional
+        Early stopping for random plans (see :func:`heatmap_job`); off by default.
 
     Returns
     -------
@@ -211,7 +310,7 @@ def occlusion_heatmap(scorer, image: np.ndarray, *, plan: Plan, fill: Fill,
     [[1.0, 1.0], [1.0, 1.0]]
     """
     return run_job(scorer, heatmap_job(image, plan=plan, fill=fill, target=target,
-                                       chunk=batch_size), batch_size=batch_size)
+                                       chunk=batch_size, tolerance=tolerance), batch_size=batch_size)
 
 
 # ---------------------------------------------------------------- map statistics
@@ -382,22 +481,25 @@ class ImageStats:
     mask_source: str | None = None
     survives_object_erased: bool | None = None
     survives_background_erased: bool | None = None
+    object_erased_prediction: int | None = None
     passes: int = 0
     extra: dict = field(default_factory=dict)
 
 
 def image_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None = None,
               mask: np.ndarray | None = None, mask_source: str | None = None,
-              chunk: int = 64, curves: bool = True) -> Job:
+              chunk: int = 64, curves: bool = True, tolerance: float | None = None) -> Job:
     """A job that returns the :class:`ImageStats` of one image.
 
     Passes: the heatmap's, then one batch of the decisive-area ladder (plus
     ``DECISIVE_BISECT`` single passes), one batch for the deletion and insertion curves,
     and two passes for the object and background erasures when a mask is given.
+    ``tolerance`` is the heatmap's early stopping (:func:`heatmap_job`), off by default.
     """
     image = _check_image(image)
     h, w, _ = image.shape
-    hm: Heatmap = yield from heatmap_job(image, plan=plan, fill=fill, target=target, chunk=chunk)
+    hm: Heatmap = yield from heatmap_job(image, plan=plan, fill=fill, target=target, chunk=chunk,
+                                         tolerance=tolerance)
     t = hm.target
     base = hm.base_scores
     passes = hm.passes
@@ -459,12 +561,13 @@ def image_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None =
         insertion = [float(v) for v in cs[CURVE_STEPS:]] + [float(base[t])]
         del_area = curve_area(curve_x, np.asarray(deletion))
         ins_area = curve_area(curve_x, np.asarray(insertion))
-    bg_share = survives_obj = survives_bg = None
+    bg_share = survives_obj = survives_bg = erased_pred = None
     if mask is not None:
         bg_share = background_share(hm.values, mask)
         if erase_batch:
             tail = scores[-2:]
-            survives_obj = bool(int(np.argmax(tail[0])) == t)
+            erased_pred = int(np.argmax(tail[0]))
+            survives_obj = bool(erased_pred == t)
             survives_bg = bool(int(np.argmax(tail[1])) == t)
     return ImageStats(
         target=t, predicted=int(np.argmax(base)), base_scores=base, heatmap=hm,
@@ -474,5 +577,6 @@ def image_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None =
         deletion_area=del_area, insertion_area=ins_area, background_share=bg_share,
         mask_source=mask_source if mask is not None else None,
         survives_object_erased=survives_obj, survives_background_erased=survives_bg,
+        object_erased_prediction=erased_pred,
         passes=passes,
     )
