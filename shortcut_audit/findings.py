@@ -220,7 +220,8 @@ def judge(classes: list[ClassSummary], images: list[ImageSummary], *,
                 evidence=_evidence("box_agreement", agreement, th.fixed_agreement, agree_others,
                                    th.fixed_margin, small_area_rate=small_rate,
                                    small_area_threshold=th.localized_rate,
-                                   images=len(mine), agreeing_images=len(members)),
+                                   images=len(mine), agreeing_images=len(members),
+                                   small_images=sum(1 for im in mine if im.small)),
                 examples=tuple(im.path for im in members[:max_examples])))
         elif localized:
             members = sorted([im for im in mine if im.small], key=lambda im: (im.decisive_area, im.path))

@@ -142,9 +142,12 @@ def finding_sentence(finding: dict) -> str:
     images = ev.get("images")
     if kind == "fixed-position":
         agreeing = ev.get("agreeing_images")
+        small = ev.get("small_images")
         count = (f"In {agreeing} of {images} correctly recognised images of {cls}"
                  if isinstance(agreeing, int) and isinstance(images, int)
                  else f"In {pct(ev.get('value'))} of the correctly recognised images of {cls}")
+        if isinstance(small, int) and isinstance(agreeing, int):
+            count += f" ({agreeing} of the {small} whose answer hinges on a small region)"
         return (f"{count}, the few pixels that decide the answer sit at the same place "
                 f"({where(finding.get('region'))}): the model may be reading something that "
                 f"is always there, such as a mark or a label, rather than the object.")
