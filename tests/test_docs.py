@@ -20,3 +20,10 @@ def test_ci_runs_the_readme_test_command():
     readme = (ROOT / "README.md").read_text(encoding="utf-8")
     command = 'pip install -e ".[test]" && python -m pytest -q'
     assert command in ci and command in readme
+
+
+def test_threshold_defaults_equal_the_table():
+    from shortcut_audit.findings import Thresholds
+    defaults = Thresholds().to_dict()
+    assert list(defaults) == [name for name, _, _ in THRESHOLD_TABLE]
+    assert all(defaults[name] == value for name, value, _ in THRESHOLD_TABLE)
