@@ -68,6 +68,7 @@ class PlanKind(str, Enum):
     grid = "grid"
     random = "random"
     rise = "rise"
+    adaptive = "adaptive"
 
 
 class FillKind(str, Enum):
@@ -125,7 +126,8 @@ BatchOpt = typer.Option(None, "--batch-size", min=1, help="Images per model call
                         rich_help_panel=MODEL_HELP)
 
 
-PlanOpt = typer.Option(PlanKind.grid, "--plan", help="Where to hide.", rich_help_panel=PLAN_HELP)
+PlanOpt = typer.Option(PlanKind.grid, "--plan", help="Where to hide (adaptive: coarse grid, then fine patches where the score moves).", rich_help_panel=PLAN_HELP)
+BudgetOpt = typer.Option(None, "--budget", min=2, help="Passes per image for --plan adaptive [default: a quarter of the fine grid].", rich_help_panel=PLAN_HELP)
 PatchOpt = typer.Option(None, "--patch", help="Patch side: pixels (8) or fraction (0.125).", rich_help_panel=PLAN_HELP)
 StrideOpt = typer.Option(None, "--stride", help="Grid step [default: half the patch].", rich_help_panel=PLAN_HELP)
 CountOpt = typer.Option(None, "--count", help="Patches or masks (random, rise).", rich_help_panel=PLAN_HELP)
@@ -169,8 +171,17 @@ def _size_value(text: str | None, name: str):
         raise UsageError(f"{name} takes pixels (8) or a fraction of the side (0.125); got {text!r}.") from None
 
 
-def build_plan(plan: PlanKind, patch, stride, count, min_size, max_size, cells, keep, seed):
+def build_plan(plan: PlanKind, patch, stride, count, min_size, max_size, cells, keep, seed,
+               budget=None):
     """The occlusion plan from command-line options."""
+    if plan == PlanKind.adaptive:
+        from .occlusion import AdaptivePlan
+        kw = {"budget": budget}
+        if patch:
+            kw["fine"] = _size_value(patch, "--patch")
+        if stride:
+            kw["fine_stride"] = _size_value(stride, "--stride")
+        return AdaptivePlan(**kw)
     if plan == PlanKind.grid:
         return GridPlan(patch=_size_value(patch, "--patch") or 0.125,
                         stride=_size_value(stride, "--stride") if stride else (None if patch else 0.0625))
@@ -291,7 +302,7 @@ def heatmap(
     count: Optional[int] = CountOpt, min_size: Optional[str] = MinSizeOpt,
     max_size: Optional[str] = MaxSizeOpt, cells: int = CellsOpt, keep: float = KeepOpt,
     fill: FillKind = FillOpt, fill_value: float = FillValueOpt, seed: int = SeedOpt,
-    score: Score = ScoreOpt,
+    score: Score = ScoreOpt, budget: Optional[int] = BudgetOpt,
     labels: Optional[Path] = LabelsOpt, config: Optional[Path] = ConfigOpt,
     layout: Optional[Layout] = LayoutOpt, size: Optional[str] = SizeOpt,
     scale: Optional[float] = ScaleOpt, mean: Optional[str] = MeanOpt, std: Optional[str] = StdOpt,
@@ -313,7 +324,7 @@ def heatmap(
 
     cfg = model_config(labels, config, layout, size, scale, mean, std, channels, resize, output,
                        threads, batch_size)
-    the_plan = build_plan(plan, patch, stride, count, min_size, max_size, cells, keep, seed)
+    the_plan = build_plan(plan, patch, stride, count, min_size, max_size, cells, keep, seed, budget)
     the_fill = Fill(kind=fill.value, value=fill_value, seed=seed)
     with _Bar("heatmap") as bar:
         result = run_heatmap(image, model, out=out_dir, model_config=cfg, plan=the_plan,
@@ -340,7 +351,7 @@ def scan(
     count: Optional[int] = CountOpt, min_size: Optional[str] = MinSizeOpt,
     max_size: Optional[str] = MaxSizeOpt, cells: int = CellsOpt, keep: float = KeepOpt,
     fill: FillKind = FillOpt, fill_value: float = FillValueOpt, seed: int = SeedOpt,
-    score: Score = ScoreOpt,
+    score: Score = ScoreOpt, budget: Optional[int] = BudgetOpt,
     confirm: bool = typer.Option(True, "--confirm/--no-confirm", help="Run the counterfactual tests on suspects."),
     probe_budget: int = typer.Option(40, "--probe-budget", min=4, help="Images per counterfactual test."),
     thresholds_file: Optional[Path] = typer.Option(None, "--thresholds", help="TOML file of threshold overrides.",
@@ -381,7 +392,7 @@ def scan(
     overrides = read_thresholds(thresholds_file) if thresholds_file else {}
     overrides.update(parse_threshold_overrides(threshold))
     settings = ScanSettings(
-        plan=build_plan(plan, patch, stride, count, min_size, max_size, cells, keep, seed),
+        plan=build_plan(plan, patch, stride, count, min_size, max_size, cells, keep, seed, budget),
         fill=Fill(kind=fill.value, value=fill_value, seed=seed), seed=seed, score=score.value,
         thresholds=Thresholds.replace_from(Thresholds(), overrides), confirm=confirm,
         probe_budget=probe_budget, per_class=per_class)

@@ -95,3 +95,16 @@ def test_label_count_mismatch_is_a_one_line_error(setup, tmp_path):
     r = runner.invoke(app, ["inspect", str(model), "--labels", str(labels)])
     assert r.exit_code == 2
     assert "2 names but the model has 3 outputs" in r.output
+
+
+def test_adaptive_plan_respects_its_budget(setup):
+    tmp, data, model = setup
+    out = tmp / "hm-adaptive"
+    r = runner.invoke(app, ["heatmap", str(data / "alpha" / "alpha_00.png"), "-m", str(model),
+                            "-o", str(out), "--plan", "adaptive", "--budget", "30"])
+    assert r.exit_code == 0, r.output
+    info = json.loads((out / "heatmap.json").read_text())
+    assert info["plan"]["kind"] == "adaptive" and info["passes"] <= 30
+    hm = np.load(out / "heatmap.npy")
+    # the planted corner still carries the most heat
+    assert hm[:6, :6].mean() > 5 * hm[10:, 10:].mean()
