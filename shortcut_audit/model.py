@@ -656,7 +656,7 @@ class OnnxClassifier:
     Batching: a dynamic batch runs ``batch_size`` images per call; a fixed batch of N
     pads the last chunk (by repeating its last image) and drops the extra rows; a
     fixed batch of 1 runs the images one at a time (warned once, as it is slow). When
-    ``batch_size`` is not set it is measured once: sizes 1, 8, 16, 32, 64 (capped so
+    ``batch_size`` is not set it is measured once: sizes 8, 16, 32, 64 (capped so
     one batch of float32 input stays under 256 MB) are timed briefly (after a warm-up
     run, best of a few) and the largest within 5% of the fastest is kept. The
     numbers differ between batch sizes only by float rounding; set ``batch_size`` for
@@ -754,6 +754,9 @@ class OnnxClassifier:
         options.log_severity_level = 3
         options.intra_op_num_threads = threads or 0
         options.inter_op_num_threads = 1
+        # Idle onnxruntime threads sleep instead of spinning: the engine prepares the next
+        # batch on the calling thread meanwhile, and other processes share the cores.
+        options.add_session_config_entry("session.intra_op.allow_spinning", "0")
         try:
             return ort.InferenceSession(
                 str(self.path), sess_options=options, providers=["CPUExecutionProvider"]
@@ -987,7 +990,9 @@ class OnnxClassifier:
         cap = max(1, MAX_BATCH_BYTES // per_image)
         rng = np.random.default_rng(1)
         rates: dict[int, float] = {}
-        for size in sorted({min(c, cap) for c in BATCH_CANDIDATES}):
+        # Not 1: the engine's own cost per call makes single images its slowest size
+        # (bench/RESULTS.md), however fast onnxruntime runs them.
+        for size in sorted({min(c, cap) for c in BATCH_CANDIDATES if c > 1}):
             images = rng.uniform(0, 255, size=(size, self.height, self.width, self.channels))
             feed = self._prepare(images.astype(np.float32))
             times = []
@@ -1000,7 +1005,7 @@ class OnnxClassifier:
             except Exception:  # e.g. out of memory at this size: keep what worked
                 break
             rates[size] = size / max(min(times), 1e-9)
-            if rates[size] < 0.6 * max(rates.values()) or sum(times) > slow:
+            if sum(times) > slow:    # not on one slow size: a busy moment would decide
                 break
         if not rates:
             return 1
@@ -1032,13 +1037,29 @@ class OnnxClassifier:
             x = np.repeat(x, 3, axis=3)
         if self.input_dtype == np.uint8:
             x = np.rint(np.clip(x, 0.0, 255.0))
-        else:
-            x = x * self._gain - self._offset
-        if self.color == "bgr":
-            x = x[..., ::-1]
+            if self.color == "bgr":
+                x = x[..., ::-1]
+            if self.layout == "nchw":
+                x = x.transpose(0, 3, 1, 2)
+            return np.ascontiguousarray(x, dtype=self.input_dtype)
+        # x * gain - offset, written straight into the layout the session takes: the same
+        # float32 operations as broadcasting over the channel axis, without its slow
+        # 3-long inner loop and the temporaries (several times faster on large inputs).
+        n, h, w, c = x.shape
         if self.layout == "nchw":
-            x = x.transpose(0, 3, 1, 2)
-        return np.ascontiguousarray(x, dtype=self.input_dtype)
+            out = np.empty((n, c, h, w), dtype=np.float32)
+            np.multiply(x.transpose(0, 3, 1, 2), self._gain.reshape(1, c, 1, 1), out=out)
+            np.subtract(out, self._offset.reshape(1, c, 1, 1), out=out)
+            if self.color == "bgr":
+                out = out[:, ::-1]
+        else:
+            out = np.empty((n, h, w, c), dtype=np.float32)
+            flat = out.reshape(n, h, w * c)
+            np.multiply(np.ascontiguousarray(x).reshape(n, h, w * c), np.tile(self._gain, w), out=flat)
+            np.subtract(flat, np.tile(self._offset, w), out=flat)
+            if self.color == "bgr":
+                out = out[..., ::-1]
+        return np.ascontiguousarray(out, dtype=self.input_dtype)
 
     def _forward(self, feed: np.ndarray) -> np.ndarray:
         n = feed.shape[0]

@@ -34,7 +34,7 @@ from scipy import ndimage
 from .engine import Job, run_job
 from .errors import ImageSkip, UsageError
 from .occlusion import (AdaptivePlan, Fill, Plan, RandomPatchPlan, SmoothMaskPlan, fill_image,
-                        iter_weights, pass_count, perturb)
+                        iter_weights, pass_count, paste_boxes, patch_boxes, perturb)
 
 __all__ = [
     "Heatmap",
@@ -221,8 +221,17 @@ def heatmap_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None
     snapshots: list[tuple[int, np.ndarray]] = []   # (masks, map) at chunk * 2**j masks
     calm = 0
     estimate = None
-    for weights in iter_weights(plan, h, w, chunk=chunk):
-        batch = perturb(image, weights, filled)
+    if rise:
+        parts = iter_weights(plan, h, w, chunk=chunk)
+    else:
+        # Patches are boxes: paste them (the same numbers as perturb with box weights).
+        # The first request is the unperturbed image and chunk - 1 patches, so every
+        # request fills a batch of ``chunk`` rows and the engine need not join requests.
+        boxes = patch_boxes(plan, h, w)
+        first = max(1, chunk - 1)
+        parts = [boxes[:first]] + [boxes[start:start + chunk] for start in range(first, len(boxes), chunk)]
+    for weights in parts:
+        batch = perturb(image, weights, filled) if rise else paste_boxes(image, weights, filled)
         if base is None:
             scores = yield np.concatenate([image[None], batch], axis=0)
             base, scores = scores[0], scores[1:]
@@ -241,9 +250,9 @@ def heatmap_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None
             score_total += float(s.sum())
         else:
             drop = base[t] - s
-            wts = weights.astype(np.float64)
-            acc += np.tensordot(drop, wts, axes=1)
-            cover += wts.sum(axis=0)
+            for (r0, r1, c0, c1), d in zip(weights, drop):
+                acc[r0:r1, c0:c1] += d
+                cover[r0:r1, c0:c1] += 1.0
         used += len(weights)
         if tolerance is not None and used < total:
             current = _running_map(acc, cover, score_total, used, plan)
@@ -509,28 +518,48 @@ def image_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None =
     def hidden(share: float) -> np.ndarray:
         return _top_mask(order, share, (h, w))
 
-    def with_hidden(masks: list[np.ndarray]) -> np.ndarray:
-        weights = np.stack(masks).astype(np.float32)
-        return perturb(image, weights, filled)
+    hidden_pixels = image + (filled - image)     # what perturb gives at weight 1
 
-    # Decisive area: the ladder in one request, then bisection.
-    requests = [hidden(s) for s in DECISIVE_LADDER]
-    n_ladder = len(requests)
+    def with_hidden(masks: list[np.ndarray]) -> np.ndarray:
+        # the same numbers as perturb with 0/1 weights, without the products
+        return np.where(np.stack(masks)[..., None], hidden_pixels[None], image[None])
+
+    # Decisive area: the ladder in one request, then bisection. Each distinct image is
+    # scored once: ("hide", k) hides the k hottest pixels, ("show", k) all but them. The
+    # ladder's 25% is the deletion curve's 4/16; hiding every pixel ends the deletion
+    # curve and starts the insertion curve; hiding none is the unperturbed image; and a
+    # bisection midpoint may fall on a curve point.
+    n_pixels = h * w
+
+    def count(share: float) -> int:
+        return int(round(share * n_pixels))
+
+    def mask_of(key: tuple[str, int]) -> np.ndarray:
+        kind, k = key
+        m = hidden(k / n_pixels)
+        return m if kind == "hide" else ~m
+
+    n_ladder = len(DECISIVE_LADDER)
+    keys = [("hide", count(s)) for s in DECISIVE_LADDER]
     curve_x = np.linspace(0.0, 1.0, CURVE_STEPS + 1)
     if curves:
         # deletion: hide the hottest x; insertion: show only the hottest x.
-        requests += [hidden(x) for x in curve_x[1:]]
-        requests += [~hidden(x) for x in curve_x[:-1]]
+        keys += [("hide", count(x)) for x in curve_x[1:]]
+        keys += [("show", count(x)) if count(x) > 0 else ("hide", n_pixels) for x in curve_x[:-1]]
+    scored = {("hide", 0): base}
+    unique = [k for k in dict.fromkeys(keys) if k not in scored]
     erase_batch = []
     if mask is not None and mask.any() and not mask.all():
         erase_batch = [erase_object(image, mask), erase_background(image, mask)]
-    batch = with_hidden(requests)
+    batch = with_hidden([mask_of(k) for k in unique]) if unique else np.zeros((0, h, w, image.shape[2]), np.float32)
     if erase_batch:
         batch = np.concatenate([batch, np.stack(erase_batch)], axis=0)
     scores = yield batch
     _check_finite(scores, "a perturbed image")
     passes += len(batch)
-    ladder = scores[:n_ladder]
+    scored.update(zip(unique, scores[:len(unique)]))
+    rows = np.stack([scored[k] for k in keys])
+    ladder = rows[:n_ladder]
     moved = np.argmax(ladder, axis=1) != t
     decisive_area = decisive_score = None
     decisive_box = None
@@ -543,9 +572,14 @@ def image_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None =
             mid = (lo + hi) / 2.0
             if int(round(mid * h * w)) in (int(round(lo * h * w)), int(round(hi * h * w))):
                 break
-            s = yield with_hidden([hidden(mid)])
-            _check_finite(s, "a perturbed image")
-            passes += 1
+            key = ("hide", count(mid))
+            if key in scored:
+                s = scored[key][None]
+            else:
+                s = yield with_hidden([hidden(mid)])
+                _check_finite(s, "a perturbed image")
+                passes += 1
+                scored[key] = s[0]
             if int(np.argmax(s[0])) != t:
                 hi, hi_score = mid, float(s[0, t])
             else:
@@ -556,7 +590,7 @@ def image_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None =
     deletion = insertion = []
     del_area = ins_area = float("nan")
     if curves:
-        cs = scores[n_ladder:n_ladder + 2 * CURVE_STEPS, t]
+        cs = rows[n_ladder:n_ladder + 2 * CURVE_STEPS, t]
         deletion = [float(base[t])] + [float(v) for v in cs[:CURVE_STEPS]]
         insertion = [float(v) for v in cs[CURVE_STEPS:]] + [float(base[t])]
         del_area = curve_area(curve_x, np.asarray(deletion))
