@@ -127,6 +127,7 @@ BatchOpt = typer.Option(None, "--batch-size", min=1, help="Images per model call
 
 
 PlanOpt = typer.Option(PlanKind.grid, "--plan", help="Where to hide (adaptive: coarse grid, then fine patches where the score moves).", rich_help_panel=PLAN_HELP)
+ToleranceOpt = typer.Option(None, "--tolerance", min=0.0, max=1.0, help="Stop a random plan once its map's estimated relative error is below this [default: off].", rich_help_panel=PLAN_HELP)
 BudgetOpt = typer.Option(None, "--budget", min=2, help="Passes per image for --plan adaptive [default: a quarter of the fine grid].", rich_help_panel=PLAN_HELP)
 PatchOpt = typer.Option(None, "--patch", help="Patch side: pixels (8) or fraction (0.125).", rich_help_panel=PLAN_HELP)
 StrideOpt = typer.Option(None, "--stride", help="Grid step [default: half the patch].", rich_help_panel=PLAN_HELP)
@@ -303,6 +304,7 @@ def heatmap(
     max_size: Optional[str] = MaxSizeOpt, cells: int = CellsOpt, keep: float = KeepOpt,
     fill: FillKind = FillOpt, fill_value: float = FillValueOpt, seed: int = SeedOpt,
     score: Score = ScoreOpt, budget: Optional[int] = BudgetOpt,
+    tolerance: Optional[float] = ToleranceOpt,
     labels: Optional[Path] = LabelsOpt, config: Optional[Path] = ConfigOpt,
     layout: Optional[Layout] = LayoutOpt, size: Optional[str] = SizeOpt,
     scale: Optional[float] = ScaleOpt, mean: Optional[str] = MeanOpt, std: Optional[str] = StdOpt,
@@ -328,7 +330,8 @@ def heatmap(
     the_fill = Fill(kind=fill.value, value=fill_value, seed=seed)
     with _Bar("heatmap") as bar:
         result = run_heatmap(image, model, out=out_dir, model_config=cfg, plan=the_plan,
-                             fill=the_fill, target=target, score=score.value, progress=bar)
+                             fill=the_fill, target=target, score=score.value, tolerance=tolerance,
+                             progress=bar)
     out.print(f"class [bold]{result['target']}[/] score {result['base_score']:.3f}; "
               f"{result['passes']} passes in {result['elapsed_seconds']:.2f} s")
     out.print(f"wrote {out_dir / 'overlay.png'}", highlight=False)
@@ -352,6 +355,7 @@ def scan(
     max_size: Optional[str] = MaxSizeOpt, cells: int = CellsOpt, keep: float = KeepOpt,
     fill: FillKind = FillOpt, fill_value: float = FillValueOpt, seed: int = SeedOpt,
     score: Score = ScoreOpt, budget: Optional[int] = BudgetOpt,
+    tolerance: Optional[float] = ToleranceOpt,
     confirm: bool = typer.Option(True, "--confirm/--no-confirm", help="Run the counterfactual tests on suspects."),
     probe_budget: int = typer.Option(40, "--probe-budget", min=4, help="Images per counterfactual test."),
     thresholds_file: Optional[Path] = typer.Option(None, "--thresholds", help="TOML file of threshold overrides.",
@@ -395,7 +399,7 @@ def scan(
         plan=build_plan(plan, patch, stride, count, min_size, max_size, cells, keep, seed, budget),
         fill=Fill(kind=fill.value, value=fill_value, seed=seed), seed=seed, score=score.value,
         thresholds=Thresholds.replace_from(Thresholds(), overrides), confirm=confirm,
-        probe_budget=probe_budget, per_class=per_class)
+        probe_budget=probe_budget, per_class=per_class, tolerance=tolerance)
     try:
         with _Bar("scan") as bar:
             result = run_scan(images, model, out=out_dir, masks=masks, manifest=manifest,

@@ -24,7 +24,8 @@ __all__ = ["run_heatmap"]
 def run_heatmap(image: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *,
                 out: str | os.PathLike, model_config: ModelConfig | None = None,
                 plan: Plan = DEFAULT_PLAN, fill: Fill = DEFAULT_FILL, target: str | int | None = None,
-                score: str = "prob", progress: Callable[[dict], None] | None = None) -> dict:
+                score: str = "prob", tolerance: float | None = None,
+                progress: Callable[[dict], None] | None = None) -> dict:
     """Compute one image's occlusion heatmap and write heatmap.npy, overlay.png, heatmap.json.
 
     Parameters
@@ -35,6 +36,9 @@ def run_heatmap(image: str | os.PathLike, model: str | os.PathLike | OnnxClassif
         Folder for the three files (created).
     target : str or int, optional
         Class name or index to explain; the model's prediction when omitted.
+    tolerance : float, optional
+        Early stopping for random plans: stop adding masks once the map's estimated
+        relative error stays below this (recorded with the masks used).
 
     Returns
     -------
@@ -65,7 +69,7 @@ def run_heatmap(image: str | os.PathLike, model: str | os.PathLike | OnnxClassif
                             {"phase": "passes", "done": engine.stats.passes, "total": total,
                              "passes_per_second": engine.stats.passes_per_second}))
     results = list(engine.run([(0, heatmap_job(pixels, plan=plan, fill=fill, target=t_index,
-                                                chunk=clf.batch_size))]))
+                                                chunk=clf.batch_size, tolerance=tolerance))]))
     hm = results[0][1]
     if isinstance(hm, Exception):
         raise hm
@@ -83,6 +87,7 @@ def run_heatmap(image: str | os.PathLike, model: str | os.PathLike | OnnxClassif
             "target": label, "target_index": hm.target, "predicted": clf.labels[hm.predicted],
             "base_score": hm.base_score, "score": score, "plan": plan.to_dict(), "fill": fill.to_dict(),
             "seed": getattr(plan, "seed", fill.seed), "passes": hm.passes, "coverage": hm.coverage,
-            "size": [clf.height, clf.width], "elapsed_seconds": round(elapsed, 3)}
+            "size": [clf.height, clf.width], "tolerance": hm.tolerance,
+            "error_estimate": hm.error_estimate, "elapsed_seconds": round(elapsed, 3)}
     write_json(out_dir / "heatmap.json", info)
     return info

@@ -54,8 +54,12 @@ class ScanSettings:
     confirm: bool = True
     probe_budget: int = 40
     per_class: int | None = None
+    tolerance: float | None = None
 
     def __post_init__(self) -> None:
+        if self.tolerance is not None and not isinstance(self.plan, (RandomPatchPlan, SmoothMaskPlan)):
+            raise UsageError("--tolerance applies to --plan random or rise; leave it out for a grid "
+                             "or adaptive plan.")
         if self.score not in ("prob", "logit"):
             raise UsageError(f"--score must be prob or logit; got {self.score!r}.")
         if not isinstance(self.seed, int) or isinstance(self.seed, bool):
@@ -74,7 +78,7 @@ class ScanSettings:
         return {"plan": self.plan.to_dict(), "fill": self.fill.to_dict(), "seed": self.seed,
                 "score": self.score, "thresholds": self.thresholds.to_dict(),
                 "confirm": self.confirm, "probe_budget": self.probe_budget,
-                "per_class": self.per_class}
+                "per_class": self.per_class, "tolerance": self.tolerance}
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -418,7 +422,7 @@ def _scan_job(rec: ImageRecord, label: int, mask, source, settings: ScanSettings
               classifier):
     stats: ImageStats = yield from image_job(
         rec.pixels, plan=settings.plan, fill=settings.fill, target=label, mask=mask,
-        mask_source=source, chunk=batch)
+        mask_source=source, chunk=batch, tolerance=settings.tolerance)
     if settings.score == "prob":
         probs = stats.base_scores
     else:

@@ -108,3 +108,18 @@ def test_adaptive_plan_respects_its_budget(setup):
     hm = np.load(out / "heatmap.npy")
     # the planted corner still carries the most heat
     assert hm[:6, :6].mean() > 5 * hm[10:, 10:].mean()
+
+
+def test_tolerance_stops_a_random_plan_and_is_refused_for_a_grid(setup):
+    tmp, data, model = setup
+    out = tmp / "hm-tol"
+    r = runner.invoke(app, ["heatmap", str(data / "alpha" / "alpha_00.png"), "-m", str(model),
+                            "-o", str(out), "--plan", "rise", "--count", "3000", "--tolerance", "0.3",
+                            "--score", "logit"])
+    assert r.exit_code == 0, r.output
+    info = json.loads((out / "heatmap.json").read_text())
+    assert info["tolerance"] == 0.3 and info["passes"] < 3001
+    assert info["error_estimate"] < 0.3
+    r = runner.invoke(app, ["scan", str(data), "-m", str(model), "-o", str(tmp / "tol-grid"),
+                            "--tolerance", "0.1"])
+    assert r.exit_code == 2 and "--tolerance applies to --plan random or rise" in r.output
