@@ -42,6 +42,7 @@ from .errors import UsageError
 from .motifs import box_pixels
 from .occlusion import Fill, box_weights, fill_image, perturb
 from .sensitivity import erase_object
+from .store import to_jsonable
 
 __all__ = [
     "PROBE_TESTS",
@@ -100,20 +101,8 @@ def fisher_greater(a: int, b: int, c: int, d: int) -> float:
 
 
 def _json(value):
-    if isinstance(value, dict):
-        return {str(k): _json(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_json(v) for v in value]
-    if isinstance(value, (bool, np.bool_)):
-        return bool(value)
-    if isinstance(value, (int, np.integer)):
-        return int(value)
-    if isinstance(value, (float, np.floating)):
-        v = float(value)
-        return v if math.isfinite(v) else None
-    if isinstance(value, np.ndarray):
-        return _json(value.tolist())
-    return value
+    """JSON-ready, exactly: the project's converter with every float digit kept."""
+    return to_jsonable(value, digits=17)
 
 
 @dataclass(frozen=True, kw_only=True)

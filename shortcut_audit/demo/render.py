@@ -130,6 +130,15 @@ def _disc_alpha(side: int, radius: float, *, ss: int = 8,
 # ------------------------------------------------------------------------------ assets
 
 
+def _round_mark_grid(side: int, ss: int):
+    """Pixel-centre coordinates of a ``side`` x ``side`` mark supersampled ``ss`` times:
+    rows, columns, the centre and the distance from it (all in output pixels)."""
+    g = (np.arange(side * ss) + 0.5) / ss
+    yy, xx = np.meshgrid(g, g, indexing="ij")
+    c = side / 2
+    return yy, xx, c, np.hypot(yy - c, xx - c)
+
+
 def stamp_rgba(size: int = 96) -> np.ndarray:
     """The maker's mark as an RGBA patch, drawn for a ``size``-px photograph.
 
@@ -153,11 +162,7 @@ def stamp_rgba(size: int = 96) -> np.ndarray:
     """
     side = _side(_STAMP_SIDE, size)
     ss = 8
-    n = side * ss
-    g = (np.arange(n) + 0.5) / ss
-    yy, xx = np.meshgrid(g, g, indexing="ij")
-    c = side / 2
-    r = np.hypot(yy - c, xx - c)
+    yy, xx, c, r = _round_mark_grid(side, ss)
     outer, inner = 0.49 * side, 0.33 * side
     ring = (r <= outer) & (r > inner)
     disc = r <= outer
@@ -202,11 +207,7 @@ def sticker_rgba(size: int = 96) -> np.ndarray:
     """
     side = _side(_STICKER_SIDE, size)
     ss = 8
-    n = side * ss
-    g = (np.arange(n) + 0.5) / ss
-    yy, xx = np.meshgrid(g, g, indexing="ij")
-    c = side / 2
-    r = np.hypot(yy - c, xx - c)
+    yy, xx, c, r = _round_mark_grid(side, ss)
     outer = 0.49 * side
     rim = r > 0.36 * side
     bar = (np.abs(yy - c) <= 0.07 * side + 0.5) & (np.abs(xx - c) <= 0.2 * side)
