@@ -121,8 +121,18 @@ def add_motif_findings(findings: list[Finding], classes: list[ClassSummary],
 def confirm_findings(findings: list[Finding], images: list[ImageSummary],
                      entries: dict[str, ImageEntry], classifier, *, thresholds: Thresholds,
                      fill, budget: int, seed: int,
-                     progress: Callable[[dict], None] | None = None) -> list[Finding]:
-    """Each finding with its counterfactual test run and its status set."""
+                     progress: Callable[[dict], None] | None = None,
+                     known_scores: dict[str, np.ndarray] | None = None) -> list[Finding]:
+    """Each finding with its counterfactual test run and its status set.
+
+    ``known_scores`` maps an image's path to the class probabilities the scan already
+    computed for it, unperturbed; the tests then score only the images they change.
+    """
+    known_scores = known_scores or {}
+
+    def known(paths: list[str]) -> list[np.ndarray] | None:
+        return [known_scores[p] for p in paths] if all(p in known_scores for p in paths) else None
+
     if not findings:
         return findings
     rng = np.random.default_rng(seed)
@@ -169,8 +179,9 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
             test_sources[k] = [p for t, p in own_all if usable(t)]
             test_targets[k] = [p for t, p in oth_all if usable(t)]
             if len(own_m) >= 2 and len(oth_m) >= 2:
-                jobs.append(((k, "test"), background_swap_job(own=own_m, others=oth_m, suspect=f.class_index,
-                                                              trials=budget, seed=job_seed)))
+                jobs.append(((k, "test"), background_swap_job(
+                    own=own_m, others=oth_m, suspect=f.class_index, trials=budget, seed=job_seed,
+                    own_scores=known(test_sources[k]), others_scores=known(test_targets[k]))))
             continue
         if f.kind == "fixed-position" and f.region is not None:
             sources = [(r.pixels, f.region) for _, r in own_r]
@@ -199,10 +210,12 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
             own_r = boxed
             placement = "on-object"
         jobs.append(((k, "test"), transplant_job(sources=sources, targets=targets, suspect=f.class_index,
-                                                 placement=placement, trials=budget, seed=job_seed)))
+                                                 placement=placement, trials=budget, seed=job_seed,
+                                                 target_scores=known(test_targets[k]))))
         if own_r:
             jobs.append(((k, "removal"), removal_job(images=[(r.pixels, im.label) for im, r in own_r],
-                                                     boxes=boxes, fill_fn=fill, suspect=f.class_index)))
+                                                     boxes=boxes, fill_fn=fill, suspect=f.class_index,
+                                                     image_scores=known([im.path for im, _ in own_r]))))
 
     engine = PassEngine(classifier.predict, batch_size=classifier.batch_size)
     results: dict = {}

@@ -1161,6 +1161,30 @@ class OnnxClassifier:
         p = np.clip(raw.astype(np.float64), _LOGIT_EPS, 1.0 - _LOGIT_EPS)
         return np.log(p / (1.0 - p)).astype(np.float32)
 
+    def probs_from_logits(self, scores: np.ndarray) -> np.ndarray:
+        """Probabilities from scores made by :meth:`logits`, without another pass.
+
+        Exactly :meth:`predict` for a logit model (the same softmax of the same raw
+        scores). For a probability or sigmoid model, the inverse of the log (or log-odds)
+        that :meth:`logits` took, equal to :meth:`predict` within float32 rounding except
+        where :meth:`logits` clipped: probabilities below 1e-12 come back as 1e-12, and
+        sigmoid values stay within [1e-7, 1 - 1e-7].
+
+        Parameters
+        ----------
+        scores : ndarray (N, K)
+
+        Returns
+        -------
+        ndarray (N, K) float32
+        """
+        scores = np.asarray(scores, dtype=np.float32)
+        if self.output_kind == "logits":
+            return self._to_probs(scores)
+        if self.output_kind == "probs":
+            return np.exp(scores.astype(np.float64)).astype(np.float32)
+        return (1.0 / (1.0 + np.exp(-scores.astype(np.float64)))).astype(np.float32)
+
     def _to_probs(self, raw: np.ndarray) -> np.ndarray:
         if self.output_kind != "logits":
             return raw.astype(np.float32, copy=False)

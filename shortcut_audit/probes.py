@@ -260,6 +260,22 @@ def _check_scores(scores: np.ndarray, suspect: int) -> np.ndarray:
     return scores
 
 
+def _known(value, n: int, what: str) -> np.ndarray | None:
+    """Scores already made of ``n`` unperturbed images, as an (n, K) array, or None."""
+    if value is None:
+        return None
+    rows = [np.asarray(v, dtype=np.float64) for v in value]
+    if len(rows) != n or any(r.ndim != 1 for r in rows) or len({r.shape for r in rows}) > 1:
+        raise UsageError(f"{what} must give one score vector (K,) per image ({n}); "
+                         f"got {len(rows)} of shapes {sorted({r.shape for r in rows})}.")
+    return np.stack(rows) if rows else np.zeros((0, 0))
+
+
+def _unperturbed(images: list[np.ndarray], known: np.ndarray | None, rows: list[int]) -> list[np.ndarray]:
+    """The unperturbed images a request must hold: none when their scores are known."""
+    return [] if known is not None else [images[j] for j in rows]
+
+
 def _cycle(rng: np.random.Generator, n: int, count: int) -> np.ndarray:
     """``count`` indices in 0..n-1: shuffled rounds of all of them, so each is used evenly."""
     rounds = -(-count // n)
@@ -349,7 +365,8 @@ def transplant_job(*, sources: Sequence[tuple[np.ndarray, Sequence[float]]],
                    targets: Sequence[tuple[np.ndarray, np.ndarray | None, int]],
                    suspect: int, placement: str,
                    control_boxes: Sequence[Sequence[float]] | None = None,
-                   trials: int = 40, seed: int = 0) -> Job:
+                   trials: int = 40, seed: int = 0,
+                   target_scores: Sequence[np.ndarray] | None = None) -> Job:
     """A job that pastes the suspect region onto other classes' images.
 
     Trial ``i`` takes source ``i mod len(sources)``, a target (shuffled rounds over all
@@ -374,6 +391,9 @@ def transplant_job(*, sources: Sequence[tuple[np.ndarray, Sequence[float]]],
         the region (grown by half the patch), from ``seed``.
     trials : int
     seed : int
+    target_scores : sequence of (K,) arrays, optional
+        The targets' unperturbed scores when they are already known (a scan has them);
+        they are then not scored again.
 
     Returns
     -------
@@ -391,8 +411,9 @@ def transplant_job(*, sources: Sequence[tuple[np.ndarray, Sequence[float]]],
 
     Notes
     -----
-    One request holds every target used, unperturbed (the "before" scores), then the
-    transplants, then the controls: ``unique targets + 2 * trials`` images.
+    One request holds every target used, unperturbed (the "before" scores; left out
+    when ``target_scores`` gives them), then the transplants, then the controls:
+    ``unique targets + 2 * trials`` images.
     """
     if len(sources) == 0:
         raise UsageError("transplant needs at least one source (an image of the suspect class and its region).")
@@ -410,6 +431,7 @@ def transplant_job(*, sources: Sequence[tuple[np.ndarray, Sequence[float]]],
              for i, t in enumerate(targets)]
     for i, t in enumerate(targets):
         _label(t[2], f"target {i}'s label")
+    known = _known(target_scores, len(targets), "target_scores")
     if control_boxes is not None and len(control_boxes) != len(sources):
         raise UsageError(f"control_boxes must give one box per source ({len(sources)}); "
                          f"got {len(control_boxes)}.")
@@ -435,10 +457,10 @@ def transplant_job(*, sources: Sequence[tuple[np.ndarray, Sequence[float]]],
                 far[s] = _far_positions(regions[s], ph, pw, h, w)
             ctrl = tuple(int(v) for v in far[s][int(rng.integers(len(far[s])))])
         plan.append((s, t, place, ctrl))
-    return _transplant(src_px, tgt_px, regions, plan, suspect, placement, h, w, trials)
+    return _transplant(src_px, tgt_px, regions, plan, suspect, placement, h, w, trials, known)
 
 
-def _transplant(src_px, tgt_px, regions, plan, suspect, placement, h, w, requested) -> Job:
+def _transplant(src_px, tgt_px, regions, plan, suspect, placement, h, w, requested, known) -> Job:
     used = sorted({t for _s, t, _p, _c in plan})
     row_of = {t: k for k, t in enumerate(used)}
     moved, controls, boxes = [], [], []
@@ -449,10 +471,11 @@ def _transplant(src_px, tgt_px, regions, plan, suspect, placement, h, w, request
         moved.append(paste(tgt_px[t], src_px[s][r0:r1, c0:c1], where))
         controls.append(paste(tgt_px[t], src_px[s][cr:cr + ph, cc:cc + pw], where))
         boxes.append([pc / w, pr / h, (pc + pw) / w, (pr + ph) / h])
-    batch = np.stack([tgt_px[t] for t in used] + moved + controls)
+    batch = np.stack(_unperturbed(tgt_px, known, used) + moved + controls)
     scores = _check_scores((yield batch), suspect)
-    n_used, n = len(used), len(plan)
-    base, after, ctrl = scores[:n_used], scores[n_used:n_used + n], scores[n_used + n:]
+    n_used, n = (0 if known is not None else len(used)), len(plan)
+    base = known[used] if known is not None else scores[:n_used]
+    after, ctrl = scores[n_used:n_used + n], scores[n_used + n:]
     keep, hits, gains, c_hits, c_gains, rows = [], [], [], [], [], []
     ineligible = invalid = 0
     for i, (s, t, _p, _c) in enumerate(plan):
@@ -480,7 +503,8 @@ def _transplant(src_px, tgt_px, regions, plan, suspect, placement, h, w, request
 # ------------------------------------------------------------------------ removal
 
 def removal_job(*, images: Sequence[tuple[np.ndarray, int]], boxes: Sequence[Sequence[float]],
-                fill_fn: Callable[[np.ndarray], np.ndarray] | Fill, suspect: int) -> Job:
+                fill_fn: Callable[[np.ndarray], np.ndarray] | Fill, suspect: int,
+                image_scores: Sequence[np.ndarray] | None = None) -> Job:
     """A job that hides the suspect region in the class's own images.
 
     Parameters
@@ -493,6 +517,9 @@ def removal_job(*, images: Sequence[tuple[np.ndarray, int]], boxes: Sequence[Seq
         ``fill_fn(image) -> (H, W, C)`` the pixels the region takes, e.g.
         ``lambda im: fill_image(im, Fill(kind="blur"))``; a :class:`Fill` is used so.
     suspect : int
+    image_scores : sequence of (K,) arrays, optional
+        The images' unperturbed scores when they are already known; they are then not
+        scored again.
 
     Returns
     -------
@@ -505,7 +532,8 @@ def removal_job(*, images: Sequence[tuple[np.ndarray, int]], boxes: Sequence[Seq
 
     Notes
     -----
-    One request: the images, then the same images with the region hidden
+    One request: the images (unless ``image_scores`` gives their scores), then the same
+    images with the region hidden
     (:func:`~shortcut_audit.occlusion.perturb` with a box of weight 1).
     """
     if len(images) == 0:
@@ -522,6 +550,7 @@ def removal_job(*, images: Sequence[tuple[np.ndarray, int]], boxes: Sequence[Seq
     pixels = [_image(p, f"image {i}") for i, (p, _l) in enumerate(images)]
     labels = [_label(l, f"image {i}'s label") for i, (_p, l) in enumerate(images)]
     h, w, c = _same_shape(pixels, "images")
+    known = _known(image_scores, len(pixels), "image_scores")
     hidden = []
     for i, img in enumerate(pixels):
         box = boxes[0] if len(boxes) == 1 else boxes[i]
@@ -531,12 +560,14 @@ def removal_job(*, images: Sequence[tuple[np.ndarray, int]], boxes: Sequence[Seq
             raise UsageError(f"fill_fn returned shape {filled.shape} for an image of shape "
                              f"{img.shape}; it must return an image of the same shape.")
         hidden.append(perturb(img, weights, filled)[0])
-    return _removal(pixels, hidden, labels, suspect)
+    return _removal(pixels, hidden, labels, suspect, known)
 
 
-def _removal(pixels, hidden, labels, suspect) -> Job:
-    scores = _check_scores((yield np.stack(pixels + hidden)), suspect)
+def _removal(pixels, hidden, labels, suspect, known) -> Job:
     n = len(pixels)
+    scores = _check_scores((yield np.stack(_unperturbed(pixels, known, list(range(n))) + hidden)), suspect)
+    if known is not None:
+        scores = np.concatenate([known, scores], axis=0)
     ok = _usable(scores[:n]) & _usable(scores[n:])
     pred = np.argmax(scores, axis=1)
     lab = np.asarray(labels)
@@ -555,7 +586,9 @@ def _removal(pixels, hidden, labels, suspect) -> Job:
 
 def background_swap_job(*, own: Sequence[tuple[np.ndarray, np.ndarray, int]],
                         others: Sequence[tuple[np.ndarray, np.ndarray, int]],
-                        suspect: int, trials: int = 40, seed: int = 0) -> Job:
+                        suspect: int, trials: int = 40, seed: int = 0,
+                        own_scores: Sequence[np.ndarray] | None = None,
+                        others_scores: Sequence[np.ndarray] | None = None) -> Job:
     """A job that puts objects in front of other images' backgrounds.
 
     In the manner of the mixed-background tests of Xiao et al. (ICLR 2021). A
@@ -582,6 +615,9 @@ def background_swap_job(*, own: Sequence[tuple[np.ndarray, np.ndarray, int]],
     trials : int
         Composites in each arm.
     seed : int
+    own_scores, others_scores : sequences of (K,) arrays, optional
+        Unperturbed scores of ``own`` and ``others`` when already known; those images
+        are then not scored again.
 
     Returns
     -------
@@ -603,9 +639,10 @@ def background_swap_job(*, own: Sequence[tuple[np.ndarray, np.ndarray, int]],
 
     Notes
     -----
-    Two requests of about ``trials * 2`` images each: the recipients used, unperturbed,
-    with the test composites and their controls; then the suspect class's images used,
-    unperturbed, with the "away" composites and their controls. Images whose mask is
+    Two requests of about ``trials * 2`` images each: the recipients used, unperturbed
+    (unless ``others_scores`` gives their scores), with the test composites and their
+    controls; then the suspect class's images used, unperturbed (unless ``own_scores``
+    gives them), with the "away" composites and their controls. Images whose mask is
     empty or full are not drawn.
     """
     suspect = _label(suspect, "suspect")
@@ -618,6 +655,7 @@ def background_swap_job(*, own: Sequence[tuple[np.ndarray, np.ndarray, int]],
     own_m = [_mask(m, (h, w), f"own image {i}'s mask") for i, (_p, m, _l) in enumerate(own)]
     oth_m = [_mask(m, (h, w), f"other image {i}'s mask") for i, (_p, m, _l) in enumerate(others)]
     oth_l = [_label(l, f"other image {i}'s label") for i, (_p, _m, l) in enumerate(others)]
+    known = (_known(own_scores, len(own_px), "own_scores"), _known(others_scores, len(oth_px), "others_scores"))
     own_ok = [i for i, m in enumerate(own_m) if m.any() and not m.all()]
     oth_ok = [i for i, m in enumerate(oth_m) if m.any() and not m.all()]
     if not own_ok or not oth_ok:
@@ -640,10 +678,10 @@ def background_swap_job(*, own: Sequence[tuple[np.ndarray, np.ndarray, int]],
         pool = [j for j in own_ok if j != o] or [o]
         away_ctrl.append(pool[int(rng.integers(len(pool)))])
     plan = (rec, donor, ctrl, obj, away_donor, away_ctrl)
-    return _swap(own_px, own_m, oth_px, oth_m, plan, suspect)
+    return _swap(own_px, own_m, oth_px, oth_m, plan, suspect, known)
 
 
-def _swap(own_px, own_m, oth_px, oth_m, plan, suspect) -> Job:
+def _swap(own_px, own_m, oth_px, oth_m, plan, suspect, known) -> Job:
     rec, donor, ctrl, obj, away_donor, away_ctrl = plan
     backgrounds: dict[tuple[str, int], np.ndarray] = {}
 
@@ -660,21 +698,22 @@ def _swap(own_px, own_m, oth_px, oth_m, plan, suspect) -> Job:
     # two requests, each about half the images: the "to" arm, then the "away" arm
     used_oth, used_own = sorted(set(rec)), sorted(set(obj))
     n = len(rec)
-    first = [oth_px[j] for j in used_oth]
+    known_own, known_oth = known
+    first = _unperturbed(oth_px, known_oth, used_oth)
     first += [composite(oth_px[r], oth_m[r], background("own", d)) for r, d in zip(rec, donor)]
     first += [composite(oth_px[r], oth_m[r], background("oth", d)) for r, d in zip(rec, ctrl)]
     scores = _check_scores((yield np.stack(first)), suspect)
     del first
-    k0 = len(used_oth)
-    base_oth = {j: scores[i] for i, j in enumerate(used_oth)}
+    k0 = 0 if known_oth is not None else len(used_oth)
+    base_oth = {j: (known_oth[j] if known_oth is not None else scores[i]) for i, j in enumerate(used_oth)}
     to, to_c = scores[k0:k0 + n], scores[k0 + n:]
-    second = [own_px[j] for j in used_own]
+    second = _unperturbed(own_px, known_own, used_own)
     second += [composite(own_px[o], own_m[o], background("oth", d)) for o, d in zip(obj, away_donor)]
     second += [composite(own_px[o], own_m[o], background("own", d)) for o, d in zip(obj, away_ctrl)]
     scores = _check_scores((yield np.stack(second)), suspect)
     del second
-    k1 = len(used_own)
-    base_own = {j: scores[i] for i, j in enumerate(used_own)}
+    k1 = 0 if known_own is not None else len(used_own)
+    base_own = {j: (known_own[j] if known_own is not None else scores[i]) for i, j in enumerate(used_own)}
     aw, aw_c = scores[k1:k1 + n], scores[k1 + n:]
 
     hits, gains, c_hits, c_gains, rows = [], [], [], [], []

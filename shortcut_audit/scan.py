@@ -322,6 +322,7 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
     acc = ClassAccumulator(len(classifier.labels), shape)
     summaries: list[ImageSummary] = []
     crops: dict[str, np.ndarray] = {}
+    known_scores: dict[str, np.ndarray] = {}    # unperturbed probabilities, reused by the tests
     for e in usable:
         got = store.get(e.path) if store is not None else memory.get(e.path)
         if got is None:
@@ -334,6 +335,8 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
         record = dict(record, path=e.path)
         im = _summary_from_record(record)
         summaries.append(im)
+        if record.get("probs") is not None:
+            known_scores[e.path] = np.asarray(record["probs"], dtype=np.float32)
         if "heatmap" in arrays:
             acc.add(im.label, arrays["heatmap"].astype(np.float64))
         if "crop" in arrays and arrays["crop"].size:
@@ -349,7 +352,7 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
         findings = confirm_findings(findings, summaries, by_path, classifier,
                                     thresholds=settings.thresholds, fill=settings.fill,
                                     budget=settings.probe_budget, seed=settings.seed,
-                                    progress=progress)
+                                    progress=progress, known_scores=known_scores)
 
     elapsed = time.perf_counter() - t_start
     model_info = {"path": str(classifier.path), "sha256": classifier.sha256,
@@ -425,6 +428,8 @@ def _scan_job(rec: ImageRecord, label: int, mask, source, settings: ScanSettings
         mask_source=source, chunk=batch, tolerance=settings.tolerance)
     if settings.score == "prob":
         probs = stats.base_scores
+    elif hasattr(classifier, "probs_from_logits"):   # no extra pass for the probabilities
+        probs = np.asarray(classifier.probs_from_logits(stats.base_scores[None])[0], dtype=np.float32)
     else:
         probs = np.asarray(classifier.predict(rec.pixels[None])[0], dtype=np.float32)
     record = _record_from_stats(rec.path, label, stats, probs)

@@ -179,6 +179,20 @@ def test_output_kind_is_detected(tmp_path, weights, pixels, output):
     np.testing.assert_allclose(clf.logits(pixels), expected_logits, atol=1e-4)
 
 
+@pytest.mark.parametrize("output", ["logits", "probs", "sigmoid"])
+def test_probabilities_come_back_from_logits_without_a_pass(tmp_path, weights, pixels, output):
+    w, b = weights
+    clf = load(write(tmp_path, ob.linear_model(w, b, height=H, width=W, output=output)))
+    back = clf.probs_from_logits(clf.logits(pixels))
+    # reference: the closed-form probabilities of the graph (as in the test above)
+    z = ob.reference_logits(w, b, pixels / 255.0)
+    np.testing.assert_allclose(back, sigmoid(z) if output == "sigmoid" else softmax(z), atol=1e-5)
+    if output == "logits":      # the same softmax of the same scores: identical
+        np.testing.assert_array_equal(back, clf.predict(pixels))
+    else:
+        np.testing.assert_allclose(back, clf.predict(pixels), rtol=1e-6, atol=1e-7)
+
+
 def test_output_kind_override(tmp_path, weights, pixels):
     w, b = weights
     clf = load(write(tmp_path, ob.linear_model(w, b, height=H, width=W, output="probs")),

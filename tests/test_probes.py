@@ -448,3 +448,80 @@ def test_cut_crop_boxes_serve_as_transplant_regions(mark_setup):
     r0, c0 = int(round(crop.box[1] * h)), int(round(crop.box[0] * w))
     back = paste(np.zeros_like(img), crop.pixels, (r0, r0 + 10, c0, c0 + 10))
     assert_allclose(back[r0:r0 + 10, c0:c0 + 10], img[r0:r0 + 10, c0:c0 + 10])
+
+
+# ------------------------------------------------- scores already made are not redone
+
+def _counting(scorer):
+    rows = []
+
+    def f(batch):
+        rows.append(len(batch))
+        return scorer(batch)
+    return f, rows
+
+
+def _same_result(a, b):
+    da, db = (a.to_dict(), b.to_dict()) if hasattr(a, "to_dict") else (a, b)
+    for key in ("trials", "hits", "control_trials", "control_hits", "images",
+                "accuracy_before", "accuracy_after"):
+        assert da.get(key) == db.get(key), key
+    assert [e["hit"] for e in da.get("examples", [])] == [e["hit"] for e in db.get("examples", [])]
+    if "mean_gain" in da:
+        assert da["mean_gain"] == pytest.approx(db["mean_gain"], abs=1e-6)
+        assert da.get("extra", {}).get("away_hits") == db.get("extra", {}).get("away_hits")
+
+
+def test_transplant_with_known_target_scores_scores_only_the_pastes(mark_setup):
+    clf = mark_setup["clf"]
+    targets = _targets(mark_setup)
+    known = list(clf.predict(np.stack([t[0] for t in targets])))
+    kw = dict(sources=_medoid_source(mark_setup), targets=targets, suspect=0,
+              placement="on-object", trials=20, seed=1)
+    full_f, full_rows = _counting(clf.predict)
+    reuse_f, reuse_rows = _counting(clf.predict)
+    full = run_job(full_f, transplant_job(**kw), batch_size=64)
+    reused = run_job(reuse_f, transplant_job(**kw, target_scores=known), batch_size=64)
+    _same_result(full, reused)
+    assert sum(reuse_rows) == 2 * 20                     # transplants and controls only
+    assert sum(full_rows) - sum(reuse_rows) == len(targets)   # 20 trials use all 8 targets
+
+
+def test_removal_with_known_scores_scores_only_the_hidden_images(mark_setup):
+    m = mark_setup["motifs"][0]
+    clf = mark_setup["clf"]
+    images = [(mark_setup["images"][i], 0) for i in m.members]
+    known = list(clf.predict(np.stack([p for p, _ in images])))
+    f, rows = _counting(clf.predict)
+    full = run_job(clf.predict, removal_job(images=images, boxes=list(m.boxes), fill_fn=BLUR, suspect=0))
+    reused = run_job(f, removal_job(images=images, boxes=list(m.boxes), fill_fn=BLUR, suspect=0,
+                                    image_scores=known))
+    assert reused == full
+    assert sum(rows) == len(images)
+
+
+def test_background_swap_with_known_scores_scores_only_the_composites(backdrop_models):
+    clf = backdrop_models["reads-backdrop"]
+    data = object_images(0)
+    own = [d for d in data if d[2] == 0]
+    others = [d for d in data if d[2] != 0]
+    kw = dict(own=own, others=others, suspect=0, trials=12, seed=2)
+    full_f, full_rows = _counting(clf.predict)
+    f, rows = _counting(clf.predict)
+    full = run_job(full_f, background_swap_job(**kw), batch_size=512)
+    reused = run_job(f, background_swap_job(
+        **kw, own_scores=list(clf.predict(np.stack([d[0] for d in own]))),
+        others_scores=list(clf.predict(np.stack([d[0] for d in others])))), batch_size=512)
+    _same_result(full, reused)
+    assert sum(rows) == 4 * 12                         # two arms and their controls
+    assert sum(full_rows) > sum(rows)
+
+
+@pytest.mark.parametrize("scores, match", [
+    ([np.zeros(3)], "one score vector"),               # too few
+    ([np.zeros((2, 3))] * 8, "one score vector"),      # not (K,)
+])
+def test_known_scores_are_checked(mark_setup, scores, match):
+    with pytest.raises(UsageError, match=match):
+        transplant_job(sources=_medoid_source(mark_setup), targets=_targets(mark_setup), suspect=0,
+                       placement="on-object", trials=4, target_scores=scores)

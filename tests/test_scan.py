@@ -166,3 +166,61 @@ def test_sigkill_midway_then_rerun_gives_the_same_audit(tmp_path):
     assert _strip_run(final.to_dict()) == _strip_run(ref.to_dict())
     # no half-written file is left behind
     assert not list(out.rglob(".tmp-*"))
+
+
+def _forwarded_rows(monkeypatch):
+    """Count the images every OnnxClassifier sends to onnxruntime."""
+    from shortcut_audit.model import OnnxClassifier
+    rows = []
+    real = OnnxClassifier._forward
+
+    def counting(self, feed):
+        rows.append(len(feed))
+        return real(self, feed)
+    monkeypatch.setattr(OnnxClassifier, "_forward", counting)
+    return rows
+
+
+def test_logit_scores_make_no_pass_beyond_the_engines(tmp_path, monkeypatch):
+    data = make_dataset(tmp_path / "data", n=4)
+    from shortcut_audit.model import OnnxClassifier
+    m = OnnxClassifier(corner_model(tmp_path / "m.onnx"))    # loading checks a few images
+    rows = _forwarded_rows(monkeypatch)
+    logit = scan(data, m, out=tmp_path / "logit", settings=ScanSettings(confirm=False, score="logit"),
+                 report=False)
+    # every image sent to onnxruntime was one of the engine's passes (before: one more
+    # per image, to get the probabilities)
+    assert sum(rows) == logit.run["passes_this_run"]
+    prob = scan(data, m, out=tmp_path / "prob", settings=FAST, report=False)
+    # reference: the probability scan's own unperturbed scores
+    a = json.loads((tmp_path / "logit" / "audit.json").read_text())["images"]
+    b = json.loads((tmp_path / "prob" / "audit.json").read_text())["images"]
+    assert [i["predicted"] for i in a] == [i["predicted"] for i in b]
+    np.testing.assert_allclose([i["confidence"] for i in a], [i["confidence"] for i in b], atol=1e-6)
+    assert prob.run["passes_this_run"] > 0
+
+
+def test_tests_reuse_the_scans_unperturbed_scores(tmp_path, monkeypatch):
+    import importlib
+    scan_module = importlib.import_module("shortcut_audit.scan")   # the package exports scan()
+    data = make_dataset(tmp_path / "data", n=6)
+    from shortcut_audit.model import OnnxClassifier
+    m = OnnxClassifier(corner_model(tmp_path / "m.onnx"))
+    settings = ScanSettings(probe_budget=12)
+    rows = _forwarded_rows(monkeypatch)
+    reused = scan(data, m, out=tmp_path / "a", settings=settings, report=False)
+    with_reuse = sum(rows)
+    rows.clear()
+    real = scan_module.confirm_findings
+    monkeypatch.setattr(scan_module, "confirm_findings",
+                        lambda *a, **kw: real(*a, **dict(kw, known_scores=None)))
+    redone = scan(data, m, out=tmp_path / "b", settings=settings, report=False)
+    without = sum(rows)
+    assert [f.status for f in reused.findings] == [f.status for f in redone.findings] == ["confirmed"]
+    ta = reused.findings[0].evidence["test"]
+    tb = redone.findings[0].evidence["test"]
+    assert (ta["hits"], ta["control_hits"], ta["trials"]) == (tb["hits"], tb["control_hits"], tb["trials"])
+    assert ta["removal"]["accuracy_before"] == tb["removal"]["accuracy_before"]
+    # the transplant's targets and the removal's images, unperturbed, are not scored again
+    saved = without - with_reuse
+    assert saved == len(set(tb["images"]["others"])) + tb["removal"]["images"], (without, with_reuse)
