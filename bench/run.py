@@ -67,7 +67,7 @@ FULL = dict(
     repeats=5, raw_seconds=1.0, small_size=64, large_size=224, large_channels=builders.LARGE_CHANNELS,
     large_classes=1000, batch_constructions=3, batch_repeats={"small": 3, "large": 2},
     engine_images={"small": 4, "large": 1}, heatmaps_per_repeat={"small": 3, "large": 1},
-    scan_images={"small": (6, 4), "large": (1, 2)},
+    scan_images={"small": (12, 4), "large": (4, 2)},
     memory_sizes=(200, 2000), memory_image=48, memory_report=True, memory_one_process=False,
     adaptive_images={"small": 144, "large": 12}, early_images=12, early_caps=(4000, 2000), reuse_images=20,
 )
@@ -179,9 +179,10 @@ def engine_rate(clf, pixels: list, batch_size: int) -> float:
     from shortcut_audit.scan import DEFAULT_FILL, DEFAULT_PLAN
     from shortcut_audit.sensitivity import heatmap_job
 
-    engine = PassEngine(clf.predict, batch_size=batch_size)
+    engine = PassEngine.for_classifier(clf, batch_size=batch_size)
     start = time.perf_counter()
-    for _key, result in engine.run([(i, heatmap_job(px, plan=DEFAULT_PLAN, fill=DEFAULT_FILL, chunk=batch_size))
+    for _key, result in engine.run([(i, heatmap_job(px, plan=DEFAULT_PLAN, fill=DEFAULT_FILL, chunk=batch_size,
+                                                    prepared_by=clf))
                                     for i, px in enumerate(pixels)]):
         if isinstance(result, Exception):
             raise result
@@ -198,12 +199,14 @@ def heatmap_rate(clf, image: Path, out: Path) -> float:
 
 
 def scan_rate(clf, images: Path) -> tuple[float, int]:
-    """The engine's passes per second during ``scan`` (at its last image) and the passes."""
+    """The engine's passes per second during ``scan``'s per-image analysis (at its last
+    image, as its progress reports it; the confirmation tests that follow run on an
+    engine of their own) and the passes."""
     from shortcut_audit.scan import ScanSettings, scan
 
     seen = []
     result = scan(images, clf, settings=ScanSettings(), report=False,
-                  progress=lambda p: seen.append(p["passes_per_second"]))
+                  progress=lambda p: p["phase"] == "images" and seen.append(p["passes_per_second"]))
     return seen[-1], result.run["passes_this_run"]
 
 

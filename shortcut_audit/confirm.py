@@ -217,7 +217,7 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
                                                      boxes=boxes, fill_fn=fill, suspect=f.class_index,
                                                      image_scores=known([im.path for im, _ in own_r]))))
 
-    engine = PassEngine(classifier.predict, batch_size=classifier.batch_size)
+    engine = PassEngine.for_classifier(classifier)
     results: dict = {}
     for key, res in engine.run(jobs):
         results[key] = res

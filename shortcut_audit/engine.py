@@ -8,8 +8,20 @@ exactly ``batch_size`` rows (splitting and joining requests as needed), and keep
 model busy: while one batch runs in a worker thread, the next is already queued and
 the jobs whose results came back prepare their next requests on the calling thread.
 
+A job may also run ahead of its scores: it yields :class:`Request` ``(images,
+ahead=True)`` to queue images without waiting; the value sent back is None while it has
+fewer than ``AHEAD_DEPTH`` requests outstanding, else the scores of its oldest one (the
+scores always come back in the order asked). It yields :data:`NEXT` to wait for the
+scores of its oldest outstanding request. One image's heatmap so keeps the model busy
+while its next batch is being made.
+
+Preparation: with ``prepare`` (e.g. :meth:`OnnxClassifier.prepare
+<shortcut_audit.model.OnnxClassifier.prepare>`, pixels to the session's input tensor), the
+engine prepares every request on the calling thread as it is queued, so the worker
+thread runs the model alone; a request marked ``prepared=True`` is already in that form.
+
 Memory stays flat: the engine starts a new job only while fewer than about two
-batches of rows are waiting, and a job yields at most one chunk at a time.
+batches of rows are waiting, and a job has at most ``AHEAD_DEPTH`` chunks outstanding.
 
 >>> import numpy as np
 >>> def job(x):
@@ -32,9 +44,35 @@ import numpy as np
 
 from .errors import UsageError
 
-__all__ = ["PassEngine", "Job", "EngineStats", "run_job"]
+__all__ = ["PassEngine", "Job", "EngineStats", "Request", "NEXT", "AHEAD_DEPTH", "run_job", "make_scorer"]
 
-Job = Generator[np.ndarray, np.ndarray, Any]
+Job = Generator[Any, np.ndarray, Any]
+
+#: Requests a job may have outstanding while it runs ahead.
+AHEAD_DEPTH = 2
+
+
+@dataclass(frozen=True)
+class Request:
+    """Images for the engine to score, with how to take them.
+
+    ``images`` are (k, H, W, C) pixels, or with ``prepared=True`` (k, ...) rows already in
+    the scorer's input form. With ``ahead=True`` the job does not wait for their scores
+    (see the module's description). A bare array is ``Request(array)``.
+    """
+
+    images: np.ndarray
+    ahead: bool = False
+    prepared: bool = False
+
+
+class _Next:
+    def __repr__(self) -> str:
+        return "NEXT"
+
+
+#: Yielded by a job to wait for the scores of its oldest outstanding request.
+NEXT = _Next()
 
 
 @dataclass
@@ -56,7 +94,7 @@ class EngineStats:
 
 
 class _Request:
-    __slots__ = ("job_id", "array", "offset", "parts", "done_rows")
+    __slots__ = ("job_id", "array", "offset", "parts", "done_rows", "result")
 
     def __init__(self, job_id: int, array: np.ndarray):
         self.job_id = job_id
@@ -64,6 +102,7 @@ class _Request:
         self.offset = 0          # rows handed to batches so far
         self.parts: list[tuple[int, np.ndarray]] = []
         self.done_rows = 0       # rows whose scores came back
+        self.result: np.ndarray | None = None
 
     @property
     def rows(self) -> int:
@@ -76,7 +115,8 @@ class PassEngine:
     Parameters
     ----------
     scorer : callable
-        ``scorer(batch (N, H, W, C) float32) -> (N, K)`` scores.
+        ``scorer(batch (N, H, W, C) float32) -> (N, K)`` scores; with ``prepare``, it takes
+        prepared rows instead.
     batch_size : int
         Rows per call of ``scorer``.
     overlap : bool, keyword-only
@@ -84,17 +124,38 @@ class PassEngine:
         onnxruntime releases the GIL while it computes, so this overlaps for real.
     on_batch : callable, optional, keyword-only
         Called with the number of rows after each batch (for progress bars).
+    prepare : callable, optional, keyword-only
+        ``prepare(pixels (k, H, W, C)) -> (k, ...)``, run on the calling thread for every
+        request not marked ``prepared``. Without it, requests go to ``scorer`` as they are.
     """
 
     def __init__(self, scorer: Callable[[np.ndarray], np.ndarray], *, batch_size: int,
-                 overlap: bool = True, on_batch: Callable[[int], None] | None = None):
+                 overlap: bool = True, on_batch: Callable[[int], None] | None = None,
+                 prepare: Callable[[np.ndarray], np.ndarray] | None = None):
         if not isinstance(batch_size, int) or batch_size < 1:
             raise UsageError(f"--batch-size must be a whole number of at least 1; got {batch_size!r}.")
         self.scorer = scorer
         self.batch_size = batch_size
         self.overlap = overlap
         self.on_batch = on_batch
+        self.prepare = prepare
         self.stats = EngineStats()
+
+    @classmethod
+    def for_classifier(cls, classifier, score: str = "prob", **kw) -> "PassEngine":
+        """An engine over a classifier's ``score_prepared``, preparing on the calling thread.
+
+        ``score`` is ``"prob"`` or ``"logit"``. A classifier without ``prepare`` and
+        ``score_prepared`` (a plain object with ``predict`` and ``logits``) is scored as
+        it is. Other keywords go to the constructor; ``batch_size`` defaults to the
+        classifier's.
+        """
+        kw.setdefault("batch_size", classifier.batch_size)
+        if hasattr(classifier, "prepare") and hasattr(classifier, "score_prepared"):
+            def scorer(rows: np.ndarray) -> np.ndarray:
+                return classifier.score_prepared(rows, score=score)
+            return cls(scorer, prepare=classifier.prepare, **kw)
+        return cls(make_scorer(classifier, score), **kw)
 
     # ------------------------------------------------------------------ scoring
     def _score(self, batch: np.ndarray) -> np.ndarray:
@@ -116,7 +177,7 @@ class PassEngine:
         """
         job_iter = iter(jobs)
         gens: dict[int, tuple[Hashable, Job]] = {}
-        waiting: dict[int, _Request] = {}      # job_id -> its request in progress
+        outstanding: dict[int, deque[_Request]] = {}   # job_id -> its requests, oldest first
         queue: deque[_Request] = deque()       # requests with rows not yet batched
         inflight: deque[tuple[Future | np.ndarray, list[tuple[_Request, int, int]]]] = deque()
         finished: list[tuple[Hashable, Any]] = []
@@ -127,27 +188,63 @@ class PassEngine:
         def queued_rows() -> int:
             return sum(r.rows - r.offset for r in queue)
 
+        def end(job_id: int, result: Any) -> None:
+            finished.append((gens.pop(job_id)[0], result))
+            outstanding.pop(job_id, None)   # rows already queued are scored and dropped
+
+        def fail(job_id: int, message: str) -> None:
+            gens[job_id][1].close()
+            end(job_id, UsageError(message))
+
         def advance(job_id: int, value: np.ndarray | None) -> None:
-            key, gen = gens[job_id]
-            try:
-                request = gen.send(value) if value is not None else next(gen)
-            except StopIteration as stop:
-                finished.append((key, stop.value))
-                del gens[job_id]
-                return
-            except Exception as exc:  # the job's own failure, reported as its result
-                finished.append((key, exc))
-                del gens[job_id]
-                return
-            request = np.asarray(request, dtype=np.float32)
-            if request.ndim != 4 or len(request) == 0:
-                finished.append((key, UsageError(
-                    f"a job asked to score an array of shape {request.shape}; it must be (k>0, H, W, C).")))
-                gens.pop(job_id)[1].close()
-                return
-            req = _Request(job_id, request)
-            waiting[job_id] = req
-            queue.append(req)
+            """Send ``value`` to the job and take its requests until it waits on one."""
+            mine = outstanding.setdefault(job_id, deque())
+            while True:
+                _key, gen = gens[job_id]
+                try:
+                    request = gen.send(value)
+                except StopIteration as stop:
+                    end(job_id, stop.value)
+                    return
+                except Exception as exc:  # the job's own failure, reported as its result
+                    end(job_id, exc)
+                    return
+                value = None
+                if request is NEXT:
+                    if not mine:
+                        fail(job_id, "a job yielded NEXT with no request outstanding.")
+                        return
+                else:
+                    if not isinstance(request, Request):
+                        request = Request(request)
+                    if not request.ahead and mine:
+                        fail(job_id, "a job asked to wait for a request while earlier ones run ahead; "
+                                     "yield NEXT for those first.")
+                        return
+                    array = np.asarray(request.images)
+                    if request.prepared and self.prepare is None:
+                        fail(job_id, "a job sent prepared rows to an engine that prepares nothing; "
+                                     "give the engine the prepare function the job used.")
+                        return
+                    if request.prepared:
+                        ok = array.ndim >= 2 and len(array) > 0
+                    else:
+                        array = array.astype(np.float32, copy=False)
+                        ok = array.ndim == 4 and len(array) > 0
+                    if not ok:
+                        fail(job_id, f"a job asked to score an array of shape {array.shape}; "
+                                     "it must be (k>0, H, W, C).")
+                        return
+                    if self.prepare is not None and not request.prepared:
+                        array = self.prepare(array)
+                    req = _Request(job_id, array)
+                    mine.append(req)
+                    queue.append(req)
+                    if request.ahead and len(mine) < AHEAD_DEPTH:
+                        continue            # running ahead: the job makes its next request
+                if mine[0].result is None:
+                    return                  # waits for its oldest request
+                value = mine.popleft().result
 
         def top_up() -> None:
             nonlocal exhausted, next_id
@@ -200,10 +297,12 @@ class PassEngine:
                 req.done_rows += n
                 if req.done_rows == req.rows:
                     req.parts.sort(key=lambda p: p[0])
-                    result = req.parts[0][1] if len(req.parts) == 1 else np.concatenate(
+                    req.result = req.parts[0][1] if len(req.parts) == 1 else np.concatenate(
                         [p[1] for p in req.parts], axis=0)
-                    del waiting[req.job_id]
-                    advance(req.job_id, result)
+                    mine = outstanding.get(req.job_id)
+                    if mine and mine[0] is req:      # the job waits for exactly this one
+                        mine.popleft()
+                        advance(req.job_id, req.result)
 
         try:
             while True:
@@ -231,6 +330,15 @@ class PassEngine:
                 gen.close()
             if executor is not None:
                 executor.shutdown(wait=True, cancel_futures=True)
+
+
+def make_scorer(classifier, score: str) -> Callable[[np.ndarray], np.ndarray]:
+    """The function an engine calls on pixels: probabilities, or logits when ``score="logit"``."""
+    if score == "logit":
+        if not hasattr(classifier, "logits"):
+            raise UsageError("--score logit needs a classifier with a logits() method.")
+        return classifier.logits
+    return classifier.predict
 
 
 def run_job(scorer: Callable[[np.ndarray], np.ndarray], job: Job, *, batch_size: int = 64) -> Any:

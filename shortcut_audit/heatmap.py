@@ -14,7 +14,7 @@ from .engine import PassEngine
 from .errors import ImageSkip, UsageError
 from .model import ModelConfig, OnnxClassifier
 from .occlusion import Fill, GridPlan, Plan, pass_count
-from .scan import DEFAULT_FILL, DEFAULT_PLAN, make_scorer
+from .scan import DEFAULT_FILL, DEFAULT_PLAN
 from .sensitivity import heatmap_job, peak_box
 from .store import write_bytes_atomic, write_json
 
@@ -64,12 +64,13 @@ def run_heatmap(image: str | os.PathLike, model: str | os.PathLike | OnnxClassif
         if not 0 <= t_index < clf.n_classes:
             raise UsageError(f"--target {t_index} is out of range for {clf.n_classes} classes.")
     total = pass_count(plan, clf.height, clf.width) + 1
-    engine = PassEngine(make_scorer(clf, score), batch_size=clf.batch_size,
-                        on_batch=lambda n: progress and progress(
+    engine = PassEngine.for_classifier(clf, score,
+                                       on_batch=lambda n: progress and progress(
                             {"phase": "passes", "done": engine.stats.passes, "total": total,
                              "passes_per_second": engine.stats.passes_per_second}))
     results = list(engine.run([(0, heatmap_job(pixels, plan=plan, fill=fill, target=t_index,
-                                                chunk=clf.batch_size, tolerance=tolerance))]))
+                                                chunk=clf.batch_size, tolerance=tolerance,
+                                                prepared_by=clf))]))
     hm = results[0][1]
     if isinstance(hm, Exception):
         raise hm

@@ -1082,27 +1082,58 @@ class OnnxClassifier:
             )
         return out[:n].astype(np.float32, copy=False)
 
-    def _run(self, batch: Any, *, warn: bool, check_shape: bool = True) -> np.ndarray:
-        x = self._as_batch(batch) if check_shape else batch
-        n = x.shape[0]
-        if n == 0:
-            return np.empty((0, getattr(self, "n_classes", 0)), np.float32)
+    def _step(self, n: int, *, warn: bool) -> int:
+        """Images per session call for a batch of ``n``."""
         if self.fixed_batch == 1:
             if warn and n > 1 and not self._warned_slow:
                 self._warned_slow = True
                 warnings.warn(
                     f"{self.path.name} has a fixed batch of 1, so images run one at a time, "
                     "which is slow; export the model with a dynamic batch dimension.",
-                    stacklevel=3,
+                    stacklevel=4,
                 )
-            step = 1
-        else:
-            step = self.fixed_batch or getattr(self, "batch_size", _TEST_IMAGES)
+            return 1
+        return self.fixed_batch or getattr(self, "batch_size", _TEST_IMAGES)
+
+    def _run(self, batch: Any, *, warn: bool, check_shape: bool = True, prepared: bool = False) -> np.ndarray:
+        x = batch if prepared else (self._as_batch(batch) if check_shape else batch)
+        n = x.shape[0]
+        if n == 0:
+            return np.empty((0, getattr(self, "n_classes", 0)), np.float32)
+        step = self._step(n, warn=warn)
         parts = [
-            self._forward(self._prepare(x[start:start + step]))
+            self._forward(x[start:start + step] if prepared else self._prepare(x[start:start + step]))
             for start in range(0, n, step)
         ]
         return parts[0] if len(parts) == 1 else np.concatenate(parts, axis=0)
+
+    def prepare(self, batch: np.ndarray) -> np.ndarray:
+        """Pixels to the session's input tensor (layout, channels, scaling, dtype).
+
+        Each pixel's values depend on that pixel alone, so a region pasted into a prepared
+        image equals the prepared image of the pasted pixels (:meth:`pixel_view`).
+
+        Parameters
+        ----------
+        batch : ndarray (N, H, W, C)
+            Pixels in 0..255 at the model's size.
+
+        Returns
+        -------
+        ndarray
+            ``(N, C, H, W)`` or ``(N, H, W, C)`` in the model's dtype.
+        """
+        return self._prepare(self._as_batch(batch))
+
+    def pixel_view(self, prepared: np.ndarray) -> np.ndarray:
+        """A view of prepared rows indexed (image, row, column, channel), for pasting."""
+        return prepared.transpose(0, 2, 3, 1) if self.layout == "nchw" else prepared
+
+    def score_prepared(self, prepared: np.ndarray, *, score: str = "prob") -> np.ndarray:
+        """Scores of rows made by :meth:`prepare`: probabilities (``"prob"``, as
+        :meth:`predict`) or ``"logit"`` (as :meth:`logits`)."""
+        raw = self._run(prepared, warn=True, prepared=True)
+        return self._to_probs(raw) if score == "prob" else self._raw_to_logits(raw)
 
     def run_raw(self, batch: np.ndarray) -> np.ndarray:
         """The model's raw scores after preprocessing.
@@ -1153,7 +1184,9 @@ class OnnxClassifier:
         -------
         ndarray (N, K) float32
         """
-        raw = self._run(batch, warn=True)
+        return self._raw_to_logits(self._run(batch, warn=True))
+
+    def _raw_to_logits(self, raw: np.ndarray) -> np.ndarray:
         if self.output_kind == "logits":
             return raw
         if self.output_kind == "probs":

@@ -26,7 +26,7 @@ from . import __version__
 from .confirm import add_motif_findings, confirm_findings
 from .classes import ClassAccumulator, ClassSummary, ImageSummary, summarise_classes
 from .dataset import ImageEntry, ImageRecord, Skip, class_names, iter_records, list_images
-from .engine import PassEngine
+from .engine import PassEngine, make_scorer
 from .errors import AuditError, DataError, ImageSkip, UsageError
 from .findings import Finding, Thresholds, judge
 from .model import ModelConfig, OnnxClassifier
@@ -128,15 +128,6 @@ def _image_dict(im: ImageSummary, labels: Sequence[str]) -> dict:
     d["label"] = labels[im.label] if 0 <= im.label < len(labels) else None
     d["predicted"] = labels[im.predicted] if 0 <= im.predicted < len(labels) else None
     return d
-
-
-def make_scorer(classifier, score: str) -> Callable[[np.ndarray], np.ndarray]:
-    """The function the engine calls: probabilities, or logits when ``score="logit"``."""
-    if score == "logit":
-        if not hasattr(classifier, "logits"):
-            raise UsageError("--score logit needs a classifier with a logits() method.")
-        return classifier.logits
-    return classifier.predict
 
 
 def _fingerprint(classifier: OnnxClassifier, settings: ScanSettings, masks: Any) -> dict:
@@ -285,7 +276,6 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
             remove_stale_temporaries(folder)
         store = ResultStore(out_dir / "results", _fingerprint(classifier, settings, masks))
     shape = (classifier.height, classifier.width)
-    scorer = make_scorer(classifier, settings.score)
     batch = classifier.batch_size
     source = {e.path: _source(e) for e in usable}
     todo = [e for e in usable if store is None or not store.has(e.path, source[e.path])]
@@ -298,7 +288,8 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
                       "passes": engine.stats.passes if engine else 0,
                       "passes_per_second": engine.stats.passes_per_second if engine else 0.0})
 
-    engine = PassEngine(scorer, batch_size=batch, on_batch=lambda n: report_progress("images", engine))
+    engine = PassEngine.for_classifier(classifier, settings.score,
+                                       on_batch=lambda n: report_progress("images", engine))
     report_progress("images", engine)
     if cluster is None:
         results = analyse_entries(todo, classifier, settings, estimate_masks=estimate_masks,
@@ -390,7 +381,10 @@ def analyse_entries(entries: Sequence[ImageEntry], classifier, settings: ScanSet
     shape = (classifier.height, classifier.width)
     batch = classifier.batch_size
     if engine is None:
-        engine = PassEngine(make_scorer(classifier, settings.score), batch_size=batch)
+        engine = PassEngine.for_classifier(classifier, settings.score)
+    # patches pasted in the session's input form when the engine prepares with this classifier
+    prepared_by = classifier if (engine.prepare is not None
+                                 and engine.prepare == getattr(classifier, "prepare", None)) else None
 
     def jobs():
         for rec in iter_records(entries, size=shape, channels=classifier.channels,
@@ -403,7 +397,7 @@ def analyse_entries(entries: Sequence[ImageEntry], classifier, settings: ScanSet
                 mask = estimate_object_mask(rec.pixels)
                 source = "estimated" if mask is not None else None
             yield rec.path, _scan_job(rec, label_index[rec.label], mask, source, settings,
-                                      batch, classifier)
+                                      batch, classifier, prepared_by)
 
     for path, result in engine.run(jobs()):
         if isinstance(result, ImageSkip):
@@ -422,10 +416,10 @@ def _skip_job(reason: str):
 
 
 def _scan_job(rec: ImageRecord, label: int, mask, source, settings: ScanSettings, batch: int,
-              classifier):
+              classifier, prepared_by=None):
     stats: ImageStats = yield from image_job(
         rec.pixels, plan=settings.plan, fill=settings.fill, target=label, mask=mask,
-        mask_source=source, chunk=batch, tolerance=settings.tolerance)
+        mask_source=source, chunk=batch, tolerance=settings.tolerance, prepared_by=prepared_by)
     if settings.score == "prob":
         probs = stats.base_scores
     elif hasattr(classifier, "probs_from_logits"):   # no extra pass for the probabilities

@@ -31,7 +31,9 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage
 
-from .engine import Job, run_job
+from collections import deque
+
+from .engine import NEXT, Job, Request, run_job
 from .errors import ImageSkip, UsageError
 from .occlusion import (AdaptivePlan, Fill, Plan, RandomPatchPlan, SmoothMaskPlan, fill_image,
                         iter_weights, pass_count, paste_boxes, patch_boxes, perturb)
@@ -163,11 +165,13 @@ def _relative_error(values: np.ndarray, earlier: np.ndarray, n: int, m: int) -> 
 
 
 def heatmap_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None = None,
-                chunk: int = 64, tolerance: float | None = None) -> Job:
+                chunk: int = 64, tolerance: float | None = None, prepared_by=None) -> Job:
     """A job that returns the :class:`Heatmap` of ``image``.
 
     The first request holds the unperturbed image and the first chunk of perturbations,
-    so a batch is never spent on one image alone. An adaptive plan is handed to
+    so a batch is never spent on one image alone. Without early stopping the job runs
+    ahead (:class:`~shortcut_audit.engine.Request` ``ahead=True``): it makes its next
+    chunk while the model scores the last. An adaptive plan is handed to
     :func:`shortcut_audit.adaptive.adaptive_job`.
 
     Parameters
@@ -188,6 +192,12 @@ def heatmap_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None
         ``tolerance`` for ``EARLY_STOP_PATIENCE`` chunks in a row no more masks are added.
         The plan's count is the cap. Off (None) by default; the heatmap records the
         tolerance and the estimate, and ``passes`` the masks used.
+    prepared_by : classifier, optional, keyword-only
+        For patch plans: an object with ``prepare(pixels)`` and ``pixel_view(rows)``
+        (:class:`~shortcut_audit.model.OnnxClassifier`) whose input form the job pastes
+        its patches in, prepared once, so the engine need not prepare every pass. Use
+        it only with an engine whose ``prepare`` is that same ``prepare``. The numbers
+        are the same as pasting pixels, since preparation is per pixel.
 
     Raises
     ------
@@ -214,13 +224,8 @@ def heatmap_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None
     total = pass_count(plan, h, w)
     acc = np.zeros((h, w), dtype=np.float64)
     cover = np.zeros((h, w), dtype=np.float64)
-    score_total = 0.0
-    base = None
-    t = target
-    used = 0
+    state = {"base": None, "t": target, "used": 0, "calm": 0, "estimate": None, "score_total": 0.0}
     snapshots: list[tuple[int, np.ndarray]] = []   # (masks, map) at chunk * 2**j masks
-    calm = 0
-    estimate = None
     if rise:
         parts = iter_weights(plan, h, w, chunk=chunk)
     else:
@@ -230,40 +235,72 @@ def heatmap_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None
         boxes = patch_boxes(plan, h, w)
         first = max(1, chunk - 1)
         parts = [boxes[:first]] + [boxes[start:start + chunk] for start in range(first, len(boxes), chunk)]
-    for weights in parts:
-        batch = perturb(image, weights, filled) if rise else paste_boxes(image, weights, filled)
-        if base is None:
-            scores = yield np.concatenate([image[None], batch], axis=0)
+    form = prepared_by if (not rise and prepared_by is not None
+                           and getattr(prepared_by, "channels", image.shape[2]) == image.shape[2]) else None
+    if form is not None:
+        base_rows = form.prepare(image[None])
+        fill_view = form.pixel_view(form.prepare(filled[None]))[0]
+
+    def make(weights: np.ndarray, with_base: bool) -> Request:
+        ahead = tolerance is None
+        if form is None:
+            batch = perturb(image, weights, filled) if rise else paste_boxes(image, weights, filled)
+            if with_base:
+                batch = np.concatenate([image[None], batch], axis=0)
+            return Request(batch, ahead=ahead)
+        k = int(with_base)
+        rows = np.repeat(base_rows, len(weights) + k, axis=0)
+        view = form.pixel_view(rows)
+        for i, (r0, r1, c0, c1) in enumerate(weights, start=k):
+            view[i, r0:r1, c0:c1] = fill_view[r0:r1, c0:c1]
+        return Request(rows, ahead=ahead, prepared=True)
+
+    def take(weights: np.ndarray, scores: np.ndarray) -> bool:
+        """Add a chunk's scores to the map; True when early stopping says stop."""
+        if state["base"] is None:
             base, scores = scores[0], scores[1:]
             _check_finite(base, "the unperturbed image")
-            if t is None:
-                t = int(np.argmax(base))
-            if not (0 <= t < len(base)):
-                raise UsageError(f"target class {t} is out of range for a model with {len(base)} classes.")
-        else:
-            scores = yield batch
+            if state["t"] is None:
+                state["t"] = int(np.argmax(base))
+            if not (0 <= state["t"] < len(base)):
+                raise UsageError(f"target class {state['t']} is out of range for a model with {len(base)} classes.")
+            state["base"] = base
+        base, t = state["base"], state["t"]
         _check_finite(scores, "a perturbed image")
         s = scores[:, t].astype(np.float64)
         if rise:
             keep = 1.0 - weights.astype(np.float64)
-            acc += np.tensordot(s, keep, axes=1)
-            score_total += float(s.sum())
+            acc[...] += np.tensordot(s, keep, axes=1)
+            state["score_total"] += float(s.sum())
         else:
             drop = base[t] - s
             for (r0, r1, c0, c1), d in zip(weights, drop):
                 acc[r0:r1, c0:c1] += d
                 cover[r0:r1, c0:c1] += 1.0
-        used += len(weights)
+        state["used"] += len(weights)
+        used = state["used"]
         if tolerance is not None and used < total:
-            current = _running_map(acc, cover, score_total, used, plan)
+            current = _running_map(acc, cover, state["score_total"], used, plan)
             half = [(m, v) for m, v in snapshots if 2 * m <= used]
             if half:
-                estimate = _relative_error(current, half[-1][1], used, half[-1][0])
-                calm = calm + 1 if estimate < tolerance else 0
-                if calm >= EARLY_STOP_PATIENCE:
-                    break
+                state["estimate"] = _relative_error(current, half[-1][1], used, half[-1][0])
+                state["calm"] = state["calm"] + 1 if state["estimate"] < tolerance else 0
+                if state["calm"] >= EARLY_STOP_PATIENCE:
+                    return True
             if not snapshots or used >= 2 * snapshots[-1][0]:
                 snapshots.append((used, current))
+        return False
+
+    pending: deque[np.ndarray] = deque()
+    for j, weights in enumerate(parts):
+        pending.append(weights)
+        got = yield make(weights, with_base=(j == 0))
+        if got is not None and take(pending.popleft(), got):
+            break
+    while pending:                       # the chunks still running ahead
+        take(pending.popleft(), (yield NEXT))
+    base, t, used, estimate = state["base"], state["t"], state["used"], state["estimate"]
+    score_total = state["score_total"]
     if tolerance is not None:
         total = used    # the masks used; the plan's count when it never stopped early
     if rise:
@@ -497,18 +534,20 @@ class ImageStats:
 
 def image_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None = None,
               mask: np.ndarray | None = None, mask_source: str | None = None,
-              chunk: int = 64, curves: bool = True, tolerance: float | None = None) -> Job:
+              chunk: int = 64, curves: bool = True, tolerance: float | None = None,
+              prepared_by=None) -> Job:
     """A job that returns the :class:`ImageStats` of one image.
 
     Passes: the heatmap's, then one batch of the decisive-area ladder (plus
     ``DECISIVE_BISECT`` single passes), one batch for the deletion and insertion curves,
     and two passes for the object and background erasures when a mask is given.
-    ``tolerance`` is the heatmap's early stopping (:func:`heatmap_job`), off by default.
+    ``tolerance`` is the heatmap's early stopping (:func:`heatmap_job`), off by default;
+    ``prepared_by`` goes to :func:`heatmap_job` too.
     """
     image = _check_image(image)
     h, w, _ = image.shape
     hm: Heatmap = yield from heatmap_job(image, plan=plan, fill=fill, target=target, chunk=chunk,
-                                         tolerance=tolerance)
+                                         tolerance=tolerance, prepared_by=prepared_by)
     t = hm.target
     base = hm.base_scores
     passes = hm.passes

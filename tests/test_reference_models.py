@@ -19,7 +19,7 @@ from onnx import TensorProto, helper
 
 from onnx_builders import linear_model, save
 from shortcut_audit.model import ModelConfig, OnnxClassifier
-from shortcut_audit.occlusion import Fill, GridPlan
+from shortcut_audit.occlusion import Fill, GridPlan, RandomPatchPlan
 from shortcut_audit.scan import make_scorer
 from shortcut_audit.sensitivity import occlusion_heatmap
 
@@ -139,3 +139,31 @@ def test_digits_score_drops_equal_sklearn_predict_proba(tmp_path):
                 occluded[r:r + 2, c:c + 2] = 0.0
                 drop = base - sk.predict_proba(occluded.reshape(1, -1) / 16.0)[0, target]
                 assert_allclose(hm.values[r:r + 2, c:c + 2], drop, atol=1e-5)
+
+
+# ------------------------------------------- patches pasted in the session's input form
+
+@pytest.mark.parametrize("layout, dtype, settings", [
+    ("nchw", "float32", dict(mean=(0.4, 0.5, 0.6), std=(0.2, 0.25, 0.3))),
+    ("nhwc", "float32", dict(channels="bgr", scale=1 / 255)),
+    ("nchw", "uint8", {}),
+])
+@pytest.mark.parametrize("plan", [GridPlan(patch=3, stride=2), RandomPatchPlan(count=50, seed=3)])
+def test_patches_pasted_in_the_input_form_give_the_same_heatmap(tmp_path, layout, dtype, settings, plan):
+    from shortcut_audit.engine import PassEngine, run_job
+    from shortcut_audit.sensitivity import heatmap_job
+
+    rng = np.random.default_rng(7)
+    w = rng.normal(size=(4, 3 * H * W)).astype(np.float32)
+    b = rng.normal(size=4).astype(np.float32)
+    clf = OnnxClassifier(save(linear_model(w, b, height=H, width=W, layout=layout, input_dtype=dtype),
+                              tmp_path / "m.onnx"), ModelConfig(batch_size=7, **settings))
+    x = rng.uniform(0, 255, size=(H, W, 3)).astype(np.float32)
+    fill = Fill(kind="mean")
+    # reference: the same job pasting pixels, each pass prepared by predict()
+    plain = run_job(clf.predict, heatmap_job(x, plan=plan, fill=fill, chunk=7), batch_size=7)
+    engine = PassEngine.for_classifier(clf)
+    [(_k, pasted)] = list(engine.run([(0, heatmap_job(x, plan=plan, fill=fill, chunk=7, prepared_by=clf))]))
+    np.testing.assert_array_equal(pasted.values, plain.values)
+    np.testing.assert_array_equal(pasted.base_scores, plain.base_scores)
+    assert pasted.passes == plain.passes == engine.stats.passes
