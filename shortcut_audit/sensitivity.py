@@ -25,6 +25,7 @@ nothing and opens nothing.
 
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass, field
 
@@ -232,7 +233,7 @@ def heatmap_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None
         # Patches are boxes: paste them (the same numbers as perturb with box weights).
         # The first request is the unperturbed image and chunk - 1 patches, so every
         # request fills a batch of ``chunk`` rows and the engine need not join requests.
-        boxes = patch_boxes(plan, h, w)
+        boxes, full_cover = _box_layout(plan, h, w)
         first = max(1, chunk - 1)
         parts = [boxes[:first]] + [boxes[start:start + chunk] for start in range(first, len(boxes), chunk)]
     form = prepared_by if (not rise and prepared_by is not None
@@ -276,7 +277,9 @@ def heatmap_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None
             drop = base[t] - s
             for (r0, r1, c0, c1), d in zip(weights, drop):
                 acc[r0:r1, c0:c1] += d
-                cover[r0:r1, c0:c1] += 1.0
+            if tolerance is not None:     # the patches used so far (else every patch, below)
+                for r0, r1, c0, c1 in weights:
+                    cover[r0:r1, c0:c1] += 1.0
         state["used"] += len(weights)
         used = state["used"]
         if tolerance is not None and used < total:
@@ -303,6 +306,8 @@ def heatmap_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None
     score_total = state["score_total"]
     if tolerance is not None:
         total = used    # the masks used; the plan's count when it never stopped early
+    elif not rise:
+        cover = full_cover
     if rise:
         values = rise_heatmap(acc, score_total / total, total, plan.keep)
         coverage = 1.0
@@ -314,6 +319,19 @@ def heatmap_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None
     return Heatmap(values=values, target=int(t), base_scores=np.asarray(base, np.float32),
                    passes=total + 1, coverage=coverage, tolerance=tolerance,
                    error_estimate=estimate if tolerance is not None else None)
+
+
+@functools.lru_cache(maxsize=16)
+def _box_layout(plan: Plan, h: int, w: int) -> tuple[np.ndarray, np.ndarray]:
+    """The boxes of a patch plan on an ``h`` x ``w`` image and how many cover each pixel
+    (the same for every image of a scan, so made once; read-only)."""
+    boxes = patch_boxes(plan, h, w)
+    cover = np.zeros((h, w), dtype=np.float64)
+    for r0, r1, c0, c1 in boxes:
+        cover[r0:r1, c0:c1] += 1.0
+    boxes.setflags(write=False)
+    cover.setflags(write=False)
+    return boxes, cover
 
 
 def _running_map(acc: np.ndarray, cover: np.ndarray, score_total: float, n: int, plan: Plan) -> np.ndarray:
@@ -590,10 +608,24 @@ def image_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None =
     erase_batch = []
     if mask is not None and mask.any() and not mask.all():
         erase_batch = [erase_object(image, mask), erase_background(image, mask)]
-    batch = with_hidden([mask_of(k) for k in unique]) if unique else np.zeros((0, h, w, image.shape[2]), np.float32)
-    if erase_batch:
-        batch = np.concatenate([batch, np.stack(erase_batch)], axis=0)
-    scores = yield batch
+    form = prepared_by if (prepared_by is not None
+                           and getattr(prepared_by, "channels", image.shape[2]) == image.shape[2]) else None
+    if form is None:
+        batch = with_hidden([mask_of(k) for k in unique]) if unique else np.zeros((0, h, w, image.shape[2]), np.float32)
+        if erase_batch:
+            batch = np.concatenate([batch, np.stack(erase_batch)], axis=0)
+        request = Request(batch)
+    else:
+        # The same images made in the session's input form: each pixel is the prepared
+        # unperturbed or the prepared hidden value (preparation is per pixel).
+        masks = np.stack([mask_of(k) for k in unique]) if unique else np.zeros((0, h, w), bool)
+        base_rows = form.prepare(np.stack([image, hidden_pixels]))
+        batch = np.repeat(base_rows[:1], len(masks), axis=0)
+        np.copyto(form.pixel_view(batch), form.pixel_view(base_rows[1:]), where=masks[..., None])
+        if erase_batch:
+            batch = np.concatenate([batch, form.prepare(np.stack(erase_batch))], axis=0)
+        request = Request(batch, prepared=True)
+    scores = yield request
     _check_finite(scores, "a perturbed image")
     passes += len(batch)
     scored.update(zip(unique, scores[:len(unique)]))

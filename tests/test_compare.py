@@ -307,3 +307,16 @@ def test_audit_folder_without_audit_json_is_refused(tmp_path):
 def test_exit_code_rejects_unknown_gate(planted):
     with pytest.raises(UsageError, match="--fail-on must be new, persists or never"):
         planted["result"].exit_code("suspect")
+
+
+def test_compare_again_reuses_both_scans(planted):
+    # The same compare into the same folder: both sides resume from their stores and
+    # make no forward pass, and the result is the same.
+    r = compare(planted["data"], before=planted["corner"], after=planted["clean"],
+                out=planted["root"] / "fixed", settings=FAST, resamples=1000)
+    for side in ("before", "after"):
+        audit = json.loads((planted["root"] / "fixed" / side / "audit.json").read_text())
+        assert audit["run"]["passes_this_run"] == 0
+        assert audit["run"]["resumed_images"] == 24
+    assert [(f.class_name, f.verdict) for f in r.findings] == [("alpha", "resolved")]
+    assert r.findings[0].statistic.before == planted["result"].findings[0].statistic.before

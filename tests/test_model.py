@@ -559,3 +559,26 @@ def test_measure_throughput_is_positive(tmp_path, weights):
 
 def test_metadata_key_is_the_documented_one():
     assert METADATA_KEY == "shortcut_audit"
+
+
+def test_measured_batch_size_is_the_largest_near_the_fastest(tmp_path, weights, monkeypatch):
+    # A fake session on a fake clock: seconds per call = per_image[size] * size, so the
+    # rates (images per second) are 1 / per_image. Worked example of the rule: the
+    # fastest is 8 (100/s); 16 (90/s) is within BATCH_KEEP = 0.85 of it, 32 (80/s) is not.
+    w, b = weights
+    clf = load(write(tmp_path, ob.linear_model(w, b, height=H, width=W)))
+    per_image = {8: 1 / 100, 16: 1 / 90, 32: 1 / 80, 64: 1 / 50}
+    clock = [0.0]
+
+    class Session:
+        def run(self, names, feed):
+            n = len(next(iter(feed.values())))
+            clock[0] += per_image[n] * n
+            return [np.zeros((n, K), np.float32)]
+
+    monkeypatch.setattr(clf, "_session", Session())
+    monkeypatch.setattr(model_module.time, "perf_counter", lambda: clock[0])
+    assert model_module.BATCH_KEEP == 0.85
+    assert clf._measure_batch_size() == 16
+    per_image[32] = 1 / 86          # now within 0.85 of the fastest
+    assert clf._measure_batch_size() == 32

@@ -167,3 +167,29 @@ def test_patches_pasted_in_the_input_form_give_the_same_heatmap(tmp_path, layout
     np.testing.assert_array_equal(pasted.values, plain.values)
     np.testing.assert_array_equal(pasted.base_scores, plain.base_scores)
     assert pasted.passes == plain.passes == engine.stats.passes
+
+
+@pytest.mark.parametrize("layout, dtype", [("nchw", "float32"), ("nhwc", "uint8")])
+def test_image_analysis_in_the_input_form_gives_the_same_statistics(tmp_path, layout, dtype):
+    from shortcut_audit.engine import PassEngine, run_job
+    from shortcut_audit.sensitivity import image_job
+
+    rng = np.random.default_rng(11)
+    w = rng.normal(size=(3, 3 * H * W)).astype(np.float32)
+    b = rng.normal(size=3).astype(np.float32)
+    clf = OnnxClassifier(save(linear_model(w, b, height=H, width=W, layout=layout, input_dtype=dtype),
+                              tmp_path / "m.onnx"),
+                         ModelConfig(batch_size=16, **({"mean": (0.5, 0.4, 0.3)} if dtype == "float32" else {})))
+    x = rng.uniform(0, 255, size=(H, W, 3)).astype(np.float32)
+    mask = np.zeros((H, W), bool)
+    mask[3:9, 2:10] = True
+    kw = dict(plan=GridPlan(patch=3, stride=2), fill=Fill(kind="blur"), mask=mask, mask_source="given", chunk=16)
+    # reference: the same analysis with pixel requests, each prepared by predict()
+    plain = run_job(clf.predict, image_job(x, **kw), batch_size=16)
+    engine = PassEngine.for_classifier(clf)
+    [(_k, formed)] = list(engine.run([(0, image_job(x, **kw, prepared_by=clf))]))
+    np.testing.assert_array_equal(formed.heatmap.values, plain.heatmap.values)
+    for field in ("decisive_area", "decisive_box", "deletion", "insertion", "survives_object_erased",
+                  "survives_background_erased", "object_erased_prediction", "passes"):
+        assert getattr(formed, field) == getattr(plain, field), field
+    assert formed.passes == engine.stats.passes
