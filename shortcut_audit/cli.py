@@ -108,7 +108,7 @@ LayoutOpt = typer.Option(None, "--layout", help="Input layout (default: read fro
                          rich_help_panel=MODEL_HELP)
 SizeOpt = typer.Option(None, "--size", help="Input size HxW, e.g. 224x224 (for dynamic graphs).",
                        rich_help_panel=MODEL_HELP)
-ScaleOpt = typer.Option(None, "--scale", help="Multiply pixels (0..255) by this first [default: 1/255].",
+ScaleOpt = typer.Option(None, "--scale", help="Multiply pixels (0..255) by this first \\[default: 1/255].",
                         rich_help_panel=MODEL_HELP)
 MeanOpt = typer.Option(None, "--mean", help="Subtract after --scale: one number or R,G,B.",
                        rich_help_panel=MODEL_HELP)
@@ -116,21 +116,21 @@ StdOpt = typer.Option(None, "--std", help="Divide after --mean: one number or R,
                       rich_help_panel=MODEL_HELP)
 ChannelsOpt = typer.Option(None, "--channels", help="Channel order the model expects.",
                            rich_help_panel=MODEL_HELP)
-ResizeOpt = typer.Option(None, "--resize", help="How images reach the input size [default: stretch].",
+ResizeOpt = typer.Option(None, "--resize", help="How images reach the input size \\[default: stretch].",
                          rich_help_panel=MODEL_HELP)
-OutputOpt = typer.Option(None, "--output", help="What the model outputs [default: detected].",
+OutputOpt = typer.Option(None, "--output", help="What the model outputs \\[default: detected].",
                          rich_help_panel=MODEL_HELP)
-ThreadsOpt = typer.Option(None, "--threads", min=1, help="onnxruntime threads [default: all cores].",
+ThreadsOpt = typer.Option(None, "--threads", min=1, help="onnxruntime threads \\[default: all cores].",
                           rich_help_panel=MODEL_HELP)
-BatchOpt = typer.Option(None, "--batch-size", min=1, help="Images per model call [default: measured].",
+BatchOpt = typer.Option(None, "--batch-size", min=1, help="Images per model call \\[default: measured].",
                         rich_help_panel=MODEL_HELP)
 
 
 PlanOpt = typer.Option(PlanKind.grid, "--plan", help="Where to hide (adaptive: coarse grid, then fine patches where the score moves).", rich_help_panel=PLAN_HELP)
-ToleranceOpt = typer.Option(None, "--tolerance", min=0.0, max=1.0, help="Stop a random plan once its map's estimated relative error is below this [default: off].", rich_help_panel=PLAN_HELP)
-BudgetOpt = typer.Option(None, "--budget", min=2, help="Passes per image for --plan adaptive [default: a quarter of the fine grid].", rich_help_panel=PLAN_HELP)
+ToleranceOpt = typer.Option(None, "--tolerance", min=0.0, max=1.0, help="Stop a random plan once its map's estimated relative error is below this \\[default: off].", rich_help_panel=PLAN_HELP)
+BudgetOpt = typer.Option(None, "--budget", min=2, help="Passes per image for --plan adaptive \\[default: a quarter of the fine grid].", rich_help_panel=PLAN_HELP)
 PatchOpt = typer.Option(None, "--patch", help="Patch side: pixels (8) or fraction (0.125).", rich_help_panel=PLAN_HELP)
-StrideOpt = typer.Option(None, "--stride", help="Grid step [default: half the patch].", rich_help_panel=PLAN_HELP)
+StrideOpt = typer.Option(None, "--stride", help="Grid step \\[default: half the patch].", rich_help_panel=PLAN_HELP)
 CountOpt = typer.Option(None, "--count", help="Patches or masks (random, rise).", rich_help_panel=PLAN_HELP)
 MinSizeOpt = typer.Option(None, "--min-size", help="Smallest random patch.", rich_help_panel=PLAN_HELP)
 MaxSizeOpt = typer.Option(None, "--max-size", help="Largest random patch.", rich_help_panel=PLAN_HELP)
@@ -298,7 +298,7 @@ def heatmap(
     image: Path = typer.Argument(..., help="One image file.", exists=True, dir_okay=False),
     model: Path = typer.Option(..., "--model", "-m", help="The .onnx file.", exists=True, dir_okay=False),
     out_dir: Path = typer.Option(..., "--out", "-o", help="Output folder.", file_okay=False),
-    target: Optional[str] = typer.Option(None, "--target", help="Class to explain (name) [default: the prediction]."),
+    target: Optional[str] = typer.Option(None, "--target", help="Class to explain (name) \\[default: the prediction]."),
     plan: PlanKind = PlanOpt, patch: Optional[str] = PatchOpt, stride: Optional[str] = StrideOpt,
     count: Optional[int] = CountOpt, min_size: Optional[str] = MinSizeOpt,
     max_size: Optional[str] = MaxSizeOpt, cells: int = CellsOpt, keep: float = KeepOpt,
@@ -477,7 +477,7 @@ def compare(
 def pack(
     audit_dir: Path = typer.Argument(..., help="A folder a scan wrote (holds audit.json).", exists=True, file_okay=False),
     out_path: Path = typer.Option(..., "--out", "-o", help="A folder, or a file ending in .zip."),
-    finding: Optional[str] = typer.Option(None, "--finding", help="Only this finding (e.g. F2) [default: all]."),
+    finding: Optional[str] = typer.Option(None, "--finding", help="Only this finding (e.g. F2) \\[default: all]."),
     images: Optional[Path] = typer.Option(None, "--images", help="Where the images are now, if they moved.",
                                           exists=True, file_okay=False),
 ):
