@@ -27,12 +27,11 @@ from __future__ import annotations
 
 import functools
 import math
+from collections import deque
 from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import ndimage
-
-from collections import deque
 
 from .engine import NEXT, Job, Request, run_job
 from .errors import ImageSkip, UsageError
