@@ -42,6 +42,8 @@ __all__ = [
     "fill_image",
     "perturb",
     "paste_boxes",
+    "hidden_image",
+    "paste_into",
 ]
 
 
@@ -485,6 +487,26 @@ def perturb(image: np.ndarray, weights: np.ndarray, filled: np.ndarray) -> np.nd
     return image[None] + weights[..., None] * delta
 
 
+def hidden_image(image: np.ndarray, filled: np.ndarray) -> np.ndarray:
+    """What :func:`perturb` gives a pixel at weight 1: ``image + (filled - image)``.
+
+    In float32 this is not always ``filled`` itself (it differs by a rounding step on
+    some pixels), so every path that hides pixels by copying takes it from here.
+    """
+    image = np.asarray(image, dtype=np.float32)
+    return image + (np.asarray(filled, dtype=np.float32) - image)
+
+
+def paste_into(rows: np.ndarray, boxes: np.ndarray, hidden: np.ndarray, *, start: int = 0) -> None:
+    """Copy box ``i`` of ``hidden`` into row ``start + i`` of ``rows``, in place.
+
+    ``rows`` is indexed (image, row, column, channel), e.g. a view of prepared model
+    input; ``hidden`` (row, column, channel) the same form of :func:`hidden_image`.
+    """
+    for i, (r0, r1, c0, c1) in enumerate(np.asarray(boxes), start=start):
+        rows[i, r0:r1, c0:c1] = hidden[r0:r1, c0:c1]
+
+
 def paste_boxes(image: np.ndarray, boxes: np.ndarray, filled: np.ndarray) -> np.ndarray:
     """Perturbed images for box patches, the same numbers as :func:`perturb` with
     :func:`box_weights`, made by pasting.
@@ -509,10 +531,8 @@ def paste_boxes(image: np.ndarray, boxes: np.ndarray, filled: np.ndarray) -> np.
     [[9.0, 9.0], [0.0, 0.0]]
     """
     image = np.asarray(image, dtype=np.float32)
-    hidden = image + (np.asarray(filled, dtype=np.float32) - image)
     boxes = np.asarray(boxes)
     out = np.empty((len(boxes),) + image.shape, dtype=np.float32)
     out[...] = image
-    for i, (r0, r1, c0, c1) in enumerate(boxes):
-        out[i, r0:r1, c0:c1] = hidden[r0:r1, c0:c1]
+    paste_into(out, boxes, hidden_image(image, filled))
     return out

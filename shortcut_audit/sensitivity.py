@@ -36,7 +36,8 @@ from scipy import ndimage
 from .engine import NEXT, Job, Request, run_job
 from .errors import ImageSkip, UsageError
 from .occlusion import (AdaptivePlan, Fill, Plan, RandomPatchPlan, SmoothMaskPlan, fill_image,
-                        iter_weights, pass_count, paste_boxes, patch_boxes, perturb)
+                        hidden_image, iter_weights, pass_count, paste_boxes, paste_into, patch_boxes,
+                        perturb)
 
 __all__ = [
     "Heatmap",
@@ -235,11 +236,10 @@ def heatmap_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None
         boxes, full_cover = _box_layout(plan, h, w)
         first = max(1, chunk - 1)
         parts = [boxes[:first]] + [boxes[start:start + chunk] for start in range(first, len(boxes), chunk)]
-    form = prepared_by if (not rise and prepared_by is not None
-                           and getattr(prepared_by, "channels", image.shape[2]) == image.shape[2]) else None
+    form = None if rise else _input_form(prepared_by, image)
     if form is not None:
-        base_rows = form.prepare(image[None])
-        fill_view = form.pixel_view(form.prepare(filled[None]))[0]
+        base_rows, hidden_rows = np.split(form.prepare(np.stack([image, hidden_image(image, filled)])), 2)
+        hidden_view = form.pixel_view(hidden_rows)[0]
 
     def make(weights: np.ndarray, with_base: bool) -> Request:
         ahead = tolerance is None
@@ -250,9 +250,7 @@ def heatmap_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None
             return Request(batch, ahead=ahead)
         k = int(with_base)
         rows = np.repeat(base_rows, len(weights) + k, axis=0)
-        view = form.pixel_view(rows)
-        for i, (r0, r1, c0, c1) in enumerate(weights, start=k):
-            view[i, r0:r1, c0:c1] = fill_view[r0:r1, c0:c1]
+        paste_into(form.pixel_view(rows), weights, hidden_view, start=k)
         return Request(rows, ahead=ahead, prepared=True)
 
     def take(weights: np.ndarray, scores: np.ndarray) -> bool:
@@ -318,6 +316,14 @@ def heatmap_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None
     return Heatmap(values=values, target=int(t), base_scores=np.asarray(base, np.float32),
                    passes=total + 1, coverage=coverage, tolerance=tolerance,
                    error_estimate=estimate if tolerance is not None else None)
+
+
+def _input_form(prepared_by, image: np.ndarray):
+    """``prepared_by`` when the job may make its images in its input form: it prepares
+    images with this many channels without converting them (else None)."""
+    if prepared_by is None or getattr(prepared_by, "channels", image.shape[2]) != image.shape[2]:
+        return None
+    return prepared_by
 
 
 @functools.lru_cache(maxsize=16)
@@ -574,7 +580,7 @@ def image_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None =
     def hidden(share: float) -> np.ndarray:
         return _top_mask(order, share, (h, w))
 
-    hidden_pixels = image + (filled - image)     # what perturb gives at weight 1
+    hidden_pixels = hidden_image(image, filled)     # what perturb gives at weight 1
 
     def with_hidden(masks: list[np.ndarray]) -> np.ndarray:
         # the same numbers as perturb with 0/1 weights, without the products
@@ -607,8 +613,7 @@ def image_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None =
     erase_batch = []
     if mask is not None and mask.any() and not mask.all():
         erase_batch = [erase_object(image, mask), erase_background(image, mask)]
-    form = prepared_by if (prepared_by is not None
-                           and getattr(prepared_by, "channels", image.shape[2]) == image.shape[2]) else None
+    form = _input_form(prepared_by, image)
     if form is None:
         batch = with_hidden([mask_of(k) for k in unique]) if unique else np.zeros((0, h, w, image.shape[2]), np.float32)
         if erase_batch:

@@ -57,11 +57,16 @@ def test_inspect(setup):
     assert info["output"]["kind"] == "logits" and info["passes_per_second"] > 0
 
 
-def test_heatmap_writes_three_files(setup):
+def _heatmap(setup, name: str, *options: str):
+    """``shortcut-audit heatmap`` of the first alpha image into ``tmp/name``."""
     tmp, data, model = setup
-    out = tmp / "hm"
-    result = runner.invoke(app, ["heatmap", str(data / "alpha" / "alpha_00.png"), "-m", str(model),
-                                 "-o", str(out), "--patch", "4", "--stride", "2"])
+    out = tmp / name
+    return runner.invoke(app, ["heatmap", str(data / "alpha" / "alpha_00.png"), "-m", str(model),
+                               "-o", str(out), *options]), out
+
+
+def test_heatmap_writes_three_files(setup):
+    result, out = _heatmap(setup, "hm", "--patch", "4", "--stride", "2")
     assert result.exit_code == 0, result.output
     hm = np.load(out / "heatmap.npy")
     assert hm.shape == (32, 32) and hm.dtype == np.float32
@@ -111,10 +116,7 @@ def test_label_count_mismatch_is_a_one_line_error(setup, tmp_path):
 
 
 def test_adaptive_plan_respects_its_budget(setup):
-    tmp, data, model = setup
-    out = tmp / "hm-adaptive"
-    r = runner.invoke(app, ["heatmap", str(data / "alpha" / "alpha_00.png"), "-m", str(model),
-                            "-o", str(out), "--plan", "adaptive", "--budget", "30"])
+    r, out = _heatmap(setup, "hm-adaptive", "--plan", "adaptive", "--budget", "30")
     assert r.exit_code == 0, r.output
     info = json.loads((out / "heatmap.json").read_text())
     assert info["plan"]["kind"] == "adaptive" and info["passes"] <= 30
@@ -125,10 +127,8 @@ def test_adaptive_plan_respects_its_budget(setup):
 
 def test_tolerance_stops_a_random_plan_and_is_refused_for_a_grid(setup):
     tmp, data, model = setup
-    out = tmp / "hm-tol"
-    r = runner.invoke(app, ["heatmap", str(data / "alpha" / "alpha_00.png"), "-m", str(model),
-                            "-o", str(out), "--plan", "rise", "--count", "3000", "--tolerance", "0.3",
-                            "--score", "logit"])
+    r, out = _heatmap(setup, "hm-tol", "--plan", "rise", "--count", "3000", "--tolerance", "0.3",
+                      "--score", "logit")
     assert r.exit_code == 0, r.output
     info = json.loads((out / "heatmap.json").read_text())
     assert info["tolerance"] == 0.3 and info["passes"] < 3001

@@ -149,7 +149,8 @@ def test_digits_score_drops_equal_sklearn_predict_proba(tmp_path):
     ("nchw", "uint8", {}),
 ])
 @pytest.mark.parametrize("plan", [GridPlan(patch=3, stride=2), RandomPatchPlan(count=50, seed=3)])
-def test_patches_pasted_in_the_input_form_give_the_same_heatmap(tmp_path, layout, dtype, settings, plan):
+@pytest.mark.parametrize("fill", [Fill(kind="mean"), Fill(kind="blur"), Fill(kind="noise", seed=2)])
+def test_patches_pasted_in_the_input_form_give_the_same_heatmap(tmp_path, layout, dtype, settings, plan, fill):
     from shortcut_audit.engine import PassEngine, run_job
     from shortcut_audit.sensitivity import heatmap_job
 
@@ -159,7 +160,6 @@ def test_patches_pasted_in_the_input_form_give_the_same_heatmap(tmp_path, layout
     clf = OnnxClassifier(save(linear_model(w, b, height=H, width=W, layout=layout, input_dtype=dtype),
                               tmp_path / "m.onnx"), ModelConfig(batch_size=7, **settings))
     x = rng.uniform(0, 255, size=(H, W, 3)).astype(np.float32)
-    fill = Fill(kind="mean")
     # reference: the same job pasting pixels, each pass prepared by predict()
     plain = run_job(clf.predict, heatmap_job(x, plan=plan, fill=fill, chunk=7), batch_size=7)
     engine = PassEngine.for_classifier(clf)
@@ -193,3 +193,25 @@ def test_image_analysis_in_the_input_form_gives_the_same_statistics(tmp_path, la
                   "survives_background_erased", "object_erased_prediction", "passes"):
         assert getattr(formed, field) == getattr(plain, field), field
     assert formed.passes == engine.stats.passes
+
+
+@pytest.mark.parametrize("fill", [Fill(kind="mean"), Fill(kind="blur"), Fill(kind="noise", seed=2)])
+def test_the_rows_pasted_in_the_input_form_are_the_prepared_pasted_pixels(tmp_path, fill):
+    # The engine would score what the job sends; compare the rows themselves, exactly:
+    # the reference is prepare() of paste_boxes() (the pixel path).
+    from shortcut_audit.occlusion import fill_image, paste_boxes, patch_boxes
+    from shortcut_audit.sensitivity import heatmap_job
+
+    rng = np.random.default_rng(7)
+    w = rng.normal(size=(2, 3 * H * W)).astype(np.float32)
+    clf = OnnxClassifier(save(linear_model(w, np.zeros(2, np.float32), height=H, width=W),
+                              tmp_path / "m.onnx"), ModelConfig(batch_size=8, mean=(0.4, 0.5, 0.6), std=(0.2, 0.3, 0.4)))
+    x = rng.uniform(0, 255, size=(H, W, 3)).astype(np.float32)
+    plan = GridPlan(patch=3, stride=2)
+    job = heatmap_job(x, plan=plan, fill=fill, chunk=8, prepared_by=clf)
+    request = next(job)
+    assert request.prepared and request.ahead
+    boxes = patch_boxes(plan, H, W)[:7]
+    expected = clf.prepare(np.concatenate([x[None], paste_boxes(x, boxes, fill_image(x, fill))]))
+    np.testing.assert_array_equal(request.images, expected)
+    job.close()
