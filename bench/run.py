@@ -202,10 +202,10 @@ def scan_rate(clf, images: Path) -> tuple[float, int]:
     """The engine's passes per second during ``scan``'s per-image analysis (at its last
     image, as its progress reports it; the confirmation tests that follow run on an
     engine of their own) and the passes."""
-    from shortcut_audit.scan import ScanSettings, scan
+    from shortcut_audit.scan import ScanSettings, audit
 
     seen = []
-    result = scan(images, clf, settings=ScanSettings(), report=False,
+    result = audit(images, clf, settings=ScanSettings(), report=False,
                   progress=lambda p: p["phase"] == "images" and seen.append(p["passes_per_second"]))
     return seen[-1], result.run["passes_this_run"]
 
@@ -305,7 +305,7 @@ def memory_child(args) -> None:
     """
     from shortcut_audit.model import ModelConfig
     from shortcut_audit.occlusion import GridPlan
-    from shortcut_audit.scan import ScanSettings, scan
+    from shortcut_audit.scan import ScanSettings, audit
 
     settings = ScanSettings(plan=GridPlan(patch=0.25, stride=0.25))
     # a fixed batch size: a measured one varies with the machine's load, and with it the
@@ -317,7 +317,7 @@ def memory_child(args) -> None:
             Path("/proc/self/clear_refs").write_text("5")
         except OSError:
             pass
-        result = scan(images, args.model, out=out, model_config=config, settings=settings, report=bool(report))
+        result = audit(images, args.model, out=out, model_config=config, settings=settings, report=bool(report))
         print(json.dumps({"vmhwm_kb": _status("VmHWM"), "rss_before_kb": before,
                           "images": len(result.images), "passes": result.run["passes_this_run"]}), flush=True)
 

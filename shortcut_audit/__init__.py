@@ -3,7 +3,7 @@
 The Python API matches the command line::
 
     import shortcut_audit as sa
-    result = sa.scan("photos/", "model.onnx", out="audit/")   # shortcut-audit scan
+    result = sa.audit("photos/", "model.onnx", out="audit/")   # shortcut-audit audit
     for finding in result.findings:
         print(finding.id, finding.class_name, finding.kind, finding.status)
 
@@ -14,7 +14,7 @@ __version__ = "0.1.0"
 
 from .dataset import ImageEntry, ImageRecord, Skip, class_names, list_images, load_image
 from .engine import PassEngine
-from .errors import AuditError, DataError, ImageSkip, ModelError, OutputError, UsageError
+from .errors import AuditError, ClusterError, DataError, ImageSkip, ModelError, OutputError, UsageError
 from .findings import Finding, Thresholds
 from .compare import CompareResult, compare
 from .heatmap import run_heatmap
@@ -22,13 +22,13 @@ from .pack import make_pack
 from .report import render_report, write_scan_report
 from .model import Classifier, ModelConfig, OnnxClassifier, read_model_config
 from .occlusion import Fill, GridPlan, RandomPatchPlan, SmoothMaskPlan
-from .scan import AuditResult, ScanSettings, scan
+from .scan import AuditResult, ScanSettings, audit
 from .sensitivity import Heatmap, ImageStats, occlusion_heatmap
 
 __all__ = [
     "__version__",
     # errors
-    "AuditError", "UsageError", "ModelError", "DataError", "ImageSkip", "OutputError",
+    "AuditError", "UsageError", "ModelError", "DataError", "ImageSkip", "OutputError", "ClusterError",
     # data and model
     "ImageEntry", "ImageRecord", "Skip", "list_images", "class_names", "load_image",
     "Classifier", "ModelConfig", "OnnxClassifier", "read_model_config",
@@ -36,7 +36,7 @@ __all__ = [
     "GridPlan", "RandomPatchPlan", "SmoothMaskPlan", "Fill", "PassEngine",
     "Heatmap", "ImageStats", "occlusion_heatmap", "run_heatmap",
     # the audit
-    "ScanSettings", "AuditResult", "Finding", "Thresholds", "scan",
+    "ScanSettings", "AuditResult", "Finding", "Thresholds", "audit",
     # what people read
     "render_report", "write_scan_report", "make_pack", "compare", "CompareResult",
 ]

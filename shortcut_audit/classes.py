@@ -97,6 +97,7 @@ class ClassSummary:
     mean_heatmap: np.ndarray | None
     metrics: dict = field(default_factory=dict)
     place_box: list[float] | None = None      # where decisive boxes agree most
+    not_judged: tuple[str, ...] = ()          # why rules could not judge it (findings.not_judged)
 
 
 class ClassAccumulator:

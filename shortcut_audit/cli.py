@@ -8,10 +8,14 @@ to do), 130 interrupted (finished work kept).
 
 from __future__ import annotations
 
+import functools
+import inspect
 import json
 import sys
 import time
+import typing
 import warnings
+from dataclasses import dataclass
 from enum import Enum
 from pathlib import Path
 from typing import Callable, Optional
@@ -142,8 +146,8 @@ SeedOpt = typer.Option(0, "--seed", help="Seed of everything random.", rich_help
 ScoreOpt = typer.Option(Score.prob, "--score", help="Score whose drop is mapped.", rich_help_panel=PLAN_HELP)
 
 
-def model_config(labels, config, layout, size, scale, mean, std, channels, resize, output,
-                 threads, batch_size) -> ModelConfig:
+def model_config(labels=None, config=None, layout=None, size=None, scale=None, mean=None, std=None,
+                 channels=None, resize=None, output=None, threads=None, batch_size=None) -> ModelConfig:
     """Command-line model options merged over a --model-config file."""
     given = ModelConfig(
         labels=read_labels(labels) if labels else None,
@@ -161,6 +165,84 @@ def model_config(labels, config, layout, size, scale, mean, std, channels, resiz
     if config is not None:
         return given.merged_over(read_model_config(config))
     return given
+
+
+def _kw(name: str, annotation, default) -> inspect.Parameter:
+    return inspect.Parameter(name, inspect.Parameter.KEYWORD_ONLY, annotation=annotation, default=default)
+
+
+#: The model options, one definition for every command that takes a model.
+MODEL_OPTIONS = (
+    _kw("labels", Optional[Path], LabelsOpt), _kw("config", Optional[Path], ConfigOpt),
+    _kw("layout", Optional[Layout], LayoutOpt), _kw("size", Optional[str], SizeOpt),
+    _kw("scale", Optional[float], ScaleOpt), _kw("mean", Optional[str], MeanOpt),
+    _kw("std", Optional[str], StdOpt), _kw("channels", Optional[Channels], ChannelsOpt),
+    _kw("resize", Optional[Resize], ResizeOpt), _kw("output", Optional[OutputKind], OutputOpt),
+    _kw("threads", Optional[int], ThreadsOpt), _kw("batch_size", Optional[int], BatchOpt),
+)
+
+
+@dataclass(frozen=True)
+class Occlusion:
+    """What the occlusion options decide: where to hide, with what, the seed, the score."""
+
+    plan: object
+    fill: Fill
+    seed: int
+    score: str
+    tolerance: float | None
+
+
+def occlusion_options(plan=PlanKind.grid, patch=None, stride=None, count=None, min_size=None,
+                      max_size=None, cells=8, keep=0.5, fill=FillKind.mean, fill_value=127.5,
+                      seed=0, score=Score.prob, budget=None, tolerance=None) -> Occlusion:
+    """The occlusion options as library values."""
+    return Occlusion(plan=build_plan(plan, patch, stride, count, min_size, max_size, cells, keep, seed, budget),
+                     fill=Fill(kind=fill.value, value=fill_value, seed=seed), seed=seed,
+                     score=score.value, tolerance=tolerance)
+
+
+#: The occlusion options, one definition for heatmap, audit and compare.
+OCCLUSION_OPTIONS = (
+    _kw("plan", PlanKind, PlanOpt), _kw("patch", Optional[str], PatchOpt),
+    _kw("stride", Optional[str], StrideOpt), _kw("count", Optional[int], CountOpt),
+    _kw("min_size", Optional[str], MinSizeOpt), _kw("max_size", Optional[str], MaxSizeOpt),
+    _kw("cells", int, CellsOpt), _kw("keep", float, KeepOpt), _kw("fill", FillKind, FillOpt),
+    _kw("fill_value", float, FillValueOpt), _kw("seed", int, SeedOpt), _kw("score", Score, ScoreOpt),
+    _kw("budget", Optional[int], BudgetOpt), _kw("tolerance", Optional[float], ToleranceOpt),
+)
+
+
+def option_group(params: tuple[inspect.Parameter, ...], build: Callable, into: str) -> Callable:
+    """Decorator: add ``params`` to a command's options; the command receives the one value
+    ``build(**those options)`` as its parameter ``into``.
+
+    typer reads a command's options from its signature, so one tuple of parameters serves
+    every command that takes the group.
+    """
+    names = [p.name for p in params]
+
+    def deco(fn: Callable) -> Callable:
+        hints = typing.get_type_hints(fn)
+        sig = inspect.signature(fn)
+        own = [p.replace(annotation=hints.get(p.name, p.annotation))
+               for p in sig.parameters.values() if p.name != into]
+        new = sig.replace(parameters=own + list(params))
+
+        @functools.wraps(fn)
+        def wrapper(*args, **kwargs):
+            values = {name: kwargs.pop(name) for name in names if name in kwargs}
+            kwargs[into] = build(**values)
+            return fn(*args, **kwargs)
+
+        wrapper.__signature__ = new
+        wrapper.__annotations__ = {p.name: p.annotation for p in new.parameters.values()}
+        return wrapper
+    return deco
+
+
+model_options = option_group(MODEL_OPTIONS, model_config, "cfg")
+occlusion_opts = option_group(OCCLUSION_OPTIONS, occlusion_options, "occ")
 
 
 def _size_value(text: str | None, name: str):
@@ -200,7 +282,6 @@ def _fail(exc: BaseException) -> None:
 
 def guarded(fn: Callable) -> Callable:
     """Map AuditError to exit 2 with its one line; keep tracebacks for real bugs."""
-    import functools
 
     @functools.wraps(fn)
     def wrapper(*args, **kwargs):
@@ -244,17 +325,13 @@ class _Bar:
 
 # ------------------------------------------------------------------- commands
 
-@app.command()
+@app.command("inspect")
 @guarded
-def inspect(
+@model_options
+def inspect_model(
     model: Path = typer.Argument(..., help="The .onnx file.", exists=True, dir_okay=False),
-    labels: Optional[Path] = LabelsOpt, config: Optional[Path] = ConfigOpt,
-    layout: Optional[Layout] = LayoutOpt, size: Optional[str] = SizeOpt,
-    scale: Optional[float] = ScaleOpt, mean: Optional[str] = MeanOpt, std: Optional[str] = StdOpt,
-    channels: Optional[Channels] = ChannelsOpt, resize: Optional[Resize] = ResizeOpt,
-    output: Optional[OutputKind] = OutputOpt, threads: Optional[int] = ThreadsOpt,
-    batch_size: Optional[int] = BatchOpt,
     as_json: bool = typer.Option(False, "--json", help="Print JSON instead of a table."),
+    cfg: ModelConfig = None,
 ):
     """What the tool understood of a model, a test forward pass, and its speed.
 
@@ -266,8 +343,6 @@ def inspect(
     """
     from .model import OnnxClassifier
 
-    cfg = model_config(labels, config, layout, size, scale, mean, std, channels, resize, output,
-                       threads, batch_size)
     clf = OnnxClassifier(model, cfg)
     info = clf.describe()
     info["passes_per_second"] = round(clf.measure_throughput(seconds=1.0), 1)
@@ -294,23 +369,14 @@ def inspect(
 
 @app.command()
 @guarded
+@model_options
+@occlusion_opts
 def heatmap(
     image: Path = typer.Argument(..., help="One image file.", exists=True, dir_okay=False),
     model: Path = typer.Option(..., "--model", "-m", help="The .onnx file.", exists=True, dir_okay=False),
     out_dir: Path = typer.Option(..., "--out", "-o", help="Output folder.", file_okay=False),
     target: Optional[str] = typer.Option(None, "--target", help="Class to explain (name) \\[default: the prediction]."),
-    plan: PlanKind = PlanOpt, patch: Optional[str] = PatchOpt, stride: Optional[str] = StrideOpt,
-    count: Optional[int] = CountOpt, min_size: Optional[str] = MinSizeOpt,
-    max_size: Optional[str] = MaxSizeOpt, cells: int = CellsOpt, keep: float = KeepOpt,
-    fill: FillKind = FillOpt, fill_value: float = FillValueOpt, seed: int = SeedOpt,
-    score: Score = ScoreOpt, budget: Optional[int] = BudgetOpt,
-    tolerance: Optional[float] = ToleranceOpt,
-    labels: Optional[Path] = LabelsOpt, config: Optional[Path] = ConfigOpt,
-    layout: Optional[Layout] = LayoutOpt, size: Optional[str] = SizeOpt,
-    scale: Optional[float] = ScaleOpt, mean: Optional[str] = MeanOpt, std: Optional[str] = StdOpt,
-    channels: Optional[Channels] = ChannelsOpt, resize: Optional[Resize] = ResizeOpt,
-    output: Optional[OutputKind] = OutputOpt, threads: Optional[int] = ThreadsOpt,
-    batch_size: Optional[int] = BatchOpt,
+    cfg: ModelConfig = None, occ: Occlusion = None,
 ):
     """The occlusion heatmap of one image: heatmap.npy, overlay.png, heatmap.json.
 
@@ -324,13 +390,9 @@ def heatmap(
     """
     from .heatmap import run_heatmap
 
-    cfg = model_config(labels, config, layout, size, scale, mean, std, channels, resize, output,
-                       threads, batch_size)
-    the_plan = build_plan(plan, patch, stride, count, min_size, max_size, cells, keep, seed, budget)
-    the_fill = Fill(kind=fill.value, value=fill_value, seed=seed)
     with _Bar("heatmap") as bar:
-        result = run_heatmap(image, model, out=out_dir, model_config=cfg, plan=the_plan,
-                             fill=the_fill, target=target, score=score.value, tolerance=tolerance,
+        result = run_heatmap(image, model, out=out_dir, model_config=cfg, plan=occ.plan,
+                             fill=occ.fill, target=target, score=occ.score, tolerance=occ.tolerance,
                              progress=bar)
     out.print(f"class [bold]{result['target']}[/] score {result['base_score']:.3f}; "
               f"{result['passes']} passes in {result['elapsed_seconds']:.2f} s")
@@ -339,7 +401,9 @@ def heatmap(
 
 @app.command()
 @guarded
-def scan(
+@model_options
+@occlusion_opts
+def audit(
     images: Path = typer.Argument(..., help="Dataset folder: one sub-folder per class (or the root of --manifest).",
                                   exists=True, file_okay=False),
     model: Path = typer.Option(..., "--model", "-m", help="The .onnx file.", exists=True, dir_okay=False),
@@ -350,14 +414,8 @@ def scan(
     manifest: Optional[Path] = typer.Option(None, "--manifest", help="CSV with path,label[,mask].",
                                             exists=True, dir_okay=False),
     per_class: Optional[int] = typer.Option(None, "--per-class", min=1, help="At most this many images a class."),
-    plan: PlanKind = PlanOpt, patch: Optional[str] = PatchOpt, stride: Optional[str] = StrideOpt,
-    count: Optional[int] = CountOpt, min_size: Optional[str] = MinSizeOpt,
-    max_size: Optional[str] = MaxSizeOpt, cells: int = CellsOpt, keep: float = KeepOpt,
-    fill: FillKind = FillOpt, fill_value: float = FillValueOpt, seed: int = SeedOpt,
-    score: Score = ScoreOpt, budget: Optional[int] = BudgetOpt,
-    tolerance: Optional[float] = ToleranceOpt,
     confirm: bool = typer.Option(True, "--confirm/--no-confirm", help="Run the counterfactual tests on suspects."),
-    probe_budget: int = typer.Option(40, "--probe-budget", min=4, help="Images per counterfactual test."),
+    test_budget: int = typer.Option(40, "--test-budget", min=4, help="Images per counterfactual test."),
     thresholds_file: Optional[Path] = typer.Option(None, "--thresholds", help="TOML file of threshold overrides.",
                                                    exists=True, dir_okay=False),
     threshold: list[str] = typer.Option([], "--threshold", help="Override one threshold: NAME=VALUE (repeatable)."),
@@ -368,41 +426,33 @@ def scan(
         help='Spread the per-image work on Dask: a scheduler address (tcp://host:8786) or local:N '
              'worker processes. Needs pip install "shortcut_audit[cluster]".'),
     fail_on: ScanGate = typer.Option(ScanGate.confirmed, "--fail-on", help="Exit 1 when a finding is at least this."),
-    labels: Optional[Path] = LabelsOpt, config: Optional[Path] = ConfigOpt,
-    layout: Optional[Layout] = LayoutOpt, size: Optional[str] = SizeOpt,
-    scale: Optional[float] = ScaleOpt, mean: Optional[str] = MeanOpt, std: Optional[str] = StdOpt,
-    channels: Optional[Channels] = ChannelsOpt, resize: Optional[Resize] = ResizeOpt,
-    output: Optional[OutputKind] = OutputOpt, threads: Optional[int] = ThreadsOpt,
-    batch_size: Optional[int] = BatchOpt,
+    cfg: ModelConfig = None, occ: Occlusion = None,
 ):
     """Audit a labelled image set: audit.json, report.html, figures, per-image results.
 
     [bold]Examples[/]
 
-      shortcut-audit scan photos/ --model model.onnx --out audit/
+      shortcut-audit audit photos/ --model model.onnx --out audit/
 
-      shortcut-audit scan photos/ -m model.onnx -o audit/ --masks masks/ --fail-on suspect
+      shortcut-audit audit photos/ -m model.onnx -o audit/ --masks masks/ --fail-on suspect
 
-      shortcut-audit scan photos/ -m model.onnx -o audit/ --threshold localized_rate=0.5 --per-class 50
+      shortcut-audit audit photos/ -m model.onnx -o audit/ --threshold localized_rate=0.5 --per-class 50
 
-      shortcut-audit scan photos/ -m model.onnx -o audit/ --batch-size 16 --cluster local:4
+      shortcut-audit audit photos/ -m model.onnx -o audit/ --batch-size 16 --cluster local:4
 
-    An interrupted scan keeps what it finished: run the same command again to resume.
+    An interrupted audit keeps what it finished: run the same command again to resume.
     """
-    from .scan import ScanSettings, scan as run_scan
+    from .scan import ScanSettings, audit as run_audit
 
-    cfg = model_config(labels, config, layout, size, scale, mean, std, channels, resize, output,
-                       threads, batch_size)
     overrides = read_thresholds(thresholds_file) if thresholds_file else {}
     overrides.update(parse_threshold_overrides(threshold))
     settings = ScanSettings(
-        plan=build_plan(plan, patch, stride, count, min_size, max_size, cells, keep, seed, budget),
-        fill=Fill(kind=fill.value, value=fill_value, seed=seed), seed=seed, score=score.value,
+        plan=occ.plan, fill=occ.fill, seed=occ.seed, score=occ.score,
         thresholds=Thresholds.replace_from(Thresholds(), overrides), confirm=confirm,
-        probe_budget=probe_budget, per_class=per_class, tolerance=tolerance)
+        test_budget=test_budget, per_class=per_class, tolerance=occ.tolerance)
     try:
-        with _Bar("scan") as bar:
-            result = run_scan(images, model, out=out_dir, masks=masks, manifest=manifest,
+        with _Bar("audit") as bar:
+            result = run_audit(images, model, out=out_dir, masks=masks, manifest=manifest,
                               model_config=cfg, settings=settings, estimate_masks=not no_estimate,
                               progress=bar, report=not no_report, cluster=cluster)
     except KeyboardInterrupt:
@@ -426,6 +476,8 @@ def scan(
 
 @app.command()
 @guarded
+@model_options
+@occlusion_opts
 def compare(
     images: Optional[Path] = typer.Argument(None, help="Dataset folder (omit with --before-audit/--after-audit).",
                                             exists=True, file_okay=False),
@@ -433,38 +485,51 @@ def compare(
     after: Optional[Path] = typer.Option(None, "--after", help="The model after the change.", exists=True, dir_okay=False),
     out_dir: Path = typer.Option(..., "--out", "-o", help="Output folder: compare.json, compare.html, before/, after/.",
                                  file_okay=False),
-    before_config: Optional[Path] = typer.Option(None, "--before-config", help="TOML model options of --before.",
-                                                 exists=True, dir_okay=False),
-    after_config: Optional[Path] = typer.Option(None, "--after-config", help="TOML model options of --after.",
-                                                exists=True, dir_okay=False),
-    before_audit: Optional[Path] = typer.Option(None, "--before-audit", help="A folder a scan wrote (instead of --before).",
+    before_config: Optional[Path] = typer.Option(
+        None, "--before-config", help="TOML model options of --before only (over the model options below).",
+        exists=True, dir_okay=False),
+    after_config: Optional[Path] = typer.Option(
+        None, "--after-config", help="TOML model options of --after only (over the model options below).",
+        exists=True, dir_okay=False),
+    before_audit: Optional[Path] = typer.Option(None, "--before-audit", help="A folder an audit wrote (instead of --before).",
                                                 exists=True, file_okay=False),
-    after_audit: Optional[Path] = typer.Option(None, "--after-audit", help="A folder a scan wrote (instead of --after).",
+    after_audit: Optional[Path] = typer.Option(None, "--after-audit", help="A folder an audit wrote (instead of --after).",
                                                exists=True, file_okay=False),
     masks: Optional[Path] = typer.Option(None, "--masks", help="Object masks mirroring the images.", exists=True, file_okay=False),
     manifest: Optional[Path] = typer.Option(None, "--manifest", help="CSV with path,label[,mask].", exists=True, dir_okay=False),
-    seed: int = typer.Option(0, "--seed", help="Seed of the scans and the bootstrap."),
     resamples: int = typer.Option(2000, "--resamples", min=100, help="Bootstrap resamples per interval."),
     confirm: bool = typer.Option(True, "--confirm/--no-confirm", help="Run the counterfactual tests on both models."),
+    test_budget: int = typer.Option(40, "--test-budget", min=4, help="Images per counterfactual test."),
     fail_on: CompareGate = typer.Option(CompareGate.new, "--fail-on", help="Exit 1 on a new finding, or on any that persists."),
+    cfg: ModelConfig = None, occ: Occlusion = None,
 ):
     """The same images through two models: which shortcuts were resolved, which persist, which are new.
+
+    The model options apply to both models; --before-config and --after-config override
+    them for one model. --seed seeds the audits and the bootstrap.
 
     [bold]Examples[/]
 
       shortcut-audit compare photos/ --before base.onnx --after dropout.onnx --out cmp/
+
+      shortcut-audit compare photos/ --before a.onnx --after b.onnx -o cmp/ --labels labels.txt --size 224x224
 
       shortcut-audit compare --before-audit audit_a/ --after-audit audit_b/ --out cmp/ --fail-on persists
     """
     from .compare import compare as run_compare
     from .scan import ScanSettings
 
-    settings = ScanSettings(seed=seed, confirm=confirm)
+    models = before is not None or after is not None
+    settings = None
+    if models:
+        settings = ScanSettings(plan=occ.plan, fill=occ.fill, seed=occ.seed, score=occ.score,
+                                confirm=confirm, test_budget=test_budget, tolerance=occ.tolerance)
     with _Bar("compare") as bar:
         result = run_compare(images, before=before, after=after, out=out_dir,
+                             model_config=None if cfg.is_empty() else cfg,
                              before_config=before_config, after_config=after_config, masks=masks,
                              manifest=manifest, settings=settings, before_audit=before_audit,
-                             after_audit=after_audit, seed=seed, resamples=resamples, progress=bar)
+                             after_audit=after_audit, seed=occ.seed, resamples=resamples, progress=bar)
     print_comparison(result)
     out.print(f"report: {out_dir / 'compare.html'}", highlight=False)
     code = result.exit_code(fail_on.value)
@@ -475,26 +540,31 @@ def compare(
 @app.command()
 @guarded
 def pack(
-    audit_dir: Path = typer.Argument(..., help="A folder a scan wrote (holds audit.json).", exists=True, file_okay=False),
+    audit_dir: Path = typer.Argument(..., help="A folder an audit wrote (holds audit.json).", exists=True, file_okay=False),
     out_path: Path = typer.Option(..., "--out", "-o", help="A folder, or a file ending in .zip."),
     finding: Optional[str] = typer.Option(None, "--finding", help="Only this finding (e.g. F2) \\[default: all]."),
     images: Optional[Path] = typer.Option(None, "--images", help="Where the images are now, if they moved.",
                                           exists=True, file_okay=False),
+    leads: bool = typer.Option(False, "--leads", help="Also pack the findings no test confirmed, marked as "
+                                                      "leads for review (they ask for no photos)."),
 ):
     """The evidence pack of an audit's findings, for whoever collects data.
 
-    Per finding: the flagged images (copied), their overlays, manifest.csv, a contact
-    sheet and request.md in plain words.
+    Per confirmed finding: the flagged images (copied), their overlays, manifest.csv, a
+    contact sheet and request.md in plain words. --leads adds the findings no test
+    confirmed, marked as leads that ask for no photos.
 
     [bold]Examples[/]
 
       shortcut-audit pack audit/ --out evidence/
 
       shortcut-audit pack audit/ --out vase-mark.zip --finding F1
+
+      shortcut-audit pack audit/ --out review/ --leads
     """
     from .pack import make_pack
 
-    written = make_pack(audit_dir, out_path, finding=finding, images=images)
+    written = make_pack(audit_dir, out_path, finding=finding, images=images, leads=leads)
     out.print(f"evidence pack: {written}", highlight=False)
 
 
@@ -561,7 +631,10 @@ def print_summary(result) -> None:
         by_class.setdefault(f.class_name, []).append(f)
     for c in result.classes:
         fs = by_class.get(c.name, [])
-        text = "; ".join(f"{f.id} {f.kind} ({f.status})" for f in fs) or "none"
+        text = "; ".join(f"{f.id} {f.kind} ({f.status})" for f in fs)
+        if c.not_judged:
+            text = "; ".join(([text] if text else []) + ["not judged: " + r for r in c.not_judged])
+        text = text or "none"
         table.add_row(escape(c.name), str(c.images), f"{c.accuracy:.0%}", f"{c.mean_confidence:.2f}", escape(text))
     out.print(table)
     if result.skipped:

@@ -56,7 +56,7 @@ from typing import Any
 
 from .dataset import ImageEntry
 from .engine import EngineStats
-from .errors import AuditError, DataError, ImageSkip, ModelError, OutputError, UsageError
+from .errors import AuditError, ClusterError, DataError, ImageSkip, ModelError, OutputError, UsageError
 from .model import ModelConfig
 
 __all__ = [
@@ -80,10 +80,6 @@ INSTALL_HINT = 'pip install "shortcut_audit[cluster]"'
 _LOCAL = re.compile(r"^local:(.*)$", re.IGNORECASE)
 # Skip reasons that, for a file this machine can read, mean a worker cannot see it.
 _NOT_FOUND = {"file not found": "file", "mask: file not found": "mask_file"}
-
-
-class ClusterError(AuditError, RuntimeError):
-    """The cluster cannot run the scan (no workers, lost scheduler, different files)."""
 
 
 @dataclass(frozen=True, kw_only=True)

@@ -375,17 +375,17 @@ class CompareResult:
 def _load_audit(folder: str | os.PathLike, option: str) -> tuple[Path, dict]:
     path = Path(folder)
     if not path.is_dir():
-        raise UsageError(f"{option} {str(path)!r} is not a folder; pass the --out folder of a scan.")
+        raise UsageError(f"{option} {str(path)!r} is not a folder; pass the --out folder of an audit.")
     file = path / "audit.json"
     if not file.is_file():
         raise UsageError(f"{option} {str(path)!r} has no audit.json; pass the --out folder of a "
-                         f"finished scan.")
+                         f"finished audit.")
     try:
         data = json.loads(file.read_text(encoding="utf-8"))
     except (OSError, ValueError) as exc:
-        raise UsageError(f"{option}: {file} is not readable JSON ({exc}); rerun the scan.") from None
+        raise UsageError(f"{option}: {file} is not readable JSON ({exc}); rerun the audit.") from None
     if not isinstance(data, dict) or data.get("schema") != SCHEMA or not isinstance(data.get("images"), list):
-        raise UsageError(f"{option}: {file} is not an audit.json of schema {SCHEMA}; rerun the scan "
+        raise UsageError(f"{option}: {file} is not an audit.json of schema {SCHEMA}; rerun the audit "
                          f"with this version of the tool.")
     return path, data
 
@@ -770,8 +770,15 @@ def _config(value, option: str):
     raise UsageError(f"{option} must be a ModelConfig or the path of a TOML file; got {type(value).__name__}.")
 
 
+def _over(side, shared):
+    """One model's options: its own over the shared ones."""
+    if side is None:
+        return shared
+    return side if shared is None else side.merged_over(shared)
+
+
 def compare(images: str | os.PathLike | None = None, *, before=None, after=None,
-            out: str | os.PathLike, before_config=None, after_config=None,
+            out: str | os.PathLike, model_config=None, before_config=None, after_config=None,
             masks: str | os.PathLike | None = None, manifest: str | os.PathLike | None = None,
             settings=None, before_audit: str | os.PathLike | None = None,
             after_audit: str | os.PathLike | None = None, seed: int = 0, resamples: int = 2000,
@@ -790,9 +797,12 @@ def compare(images: str | os.PathLike | None = None, *, before=None, after=None,
     before, after : path or OnnxClassifier, optional
     out : path
         Output folder: compare.json, compare.html (and before/, after/ when scanning).
+    model_config : ModelConfig or path of a TOML file, optional
+        Model options for both models.
     before_config, after_config : ModelConfig or path of a TOML file, optional
+        Model options for one model, over ``model_config``.
     masks, manifest : path, optional
-        As for :func:`~shortcut_audit.scan.scan`; only when scanning.
+        As for :func:`~shortcut_audit.scan.audit`; only when scanning.
     settings : ScanSettings, optional
         One for both scans.
     before_audit, after_audit : path, optional
@@ -830,16 +840,18 @@ def compare(images: str | os.PathLike | None = None, *, before=None, after=None,
                              f"--before and --after models.")
         if images is None:
             raise UsageError("IMAGES is missing: pass the image folder both models are scanned on.")
-        from .scan import ScanSettings, scan
+        from .scan import ScanSettings, audit
 
         settings = settings or ScanSettings()
         if not isinstance(settings, ScanSettings):
             raise UsageError(f"settings must be a ScanSettings; got {type(settings).__name__}.")
-        cfg_b, cfg_a = _config(before_config, "--before-config"), _config(after_config, "--after-config")
+        shared = _config(model_config, "model_config")
+        cfg_b, cfg_a = (_over(_config(before_config, "--before-config"), shared),
+                        _over(_config(after_config, "--after-config"), shared))
         sides = {}
         for side, model, cfg in (("before", before, cfg_b), ("after", after, cfg_a)):
             tagged = None if progress is None else (lambda d, s=side: progress(dict(d, side=s)))
-            res = scan(images, model, out=out_dir / side, masks=masks, manifest=manifest, report=False,
+            res = audit(images, model, out=out_dir / side, masks=masks, manifest=manifest, report=False,
                        model_config=cfg, settings=settings, progress=tagged)
             sides[side] = res.to_dict()
         bdir, adir = out_dir / "before", out_dir / "after"
@@ -850,6 +862,7 @@ def compare(images: str | os.PathLike | None = None, *, before=None, after=None,
             raise UsageError(f"--{'after' if after_audit is None else 'before'}-audit is missing; pass "
                              f"both --before-audit and --after-audit.")
         for value, option in ((masks, "--masks"), (manifest, "--manifest"), (settings, "settings"),
+                              (model_config, "the model options"),
                               (before_config, "--before-config"), (after_config, "--after-config")):
             if value is not None:
                 raise UsageError(f"{option} applies only when compare scans two models; the saved "

@@ -32,6 +32,7 @@ from .engine import PassEngine
 from .findings import Finding, Thresholds
 from .motifs import cut_crop, find_motifs
 from .probes import background_swap_job, removal_job, transplant_job
+from .regions import tighten_region
 from .sensitivity import estimate_object_mask
 
 __all__ = ["add_motif_findings", "confirm_findings", "crop_side"]
@@ -184,6 +185,10 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
                     own_scores=known(test_sources[k]), others_scores=known(test_targets[k]))))
             continue
         if f.kind == "fixed-position" and f.region is not None:
+            tight = tighten_region(f.region, [r.pixels for _, r in own_r], [r.pixels for _, r in oth_r])
+            if tight is not None and tight != f.region:
+                f = dataclasses.replace(f, region=tight, evidence=dict(f.evidence, heat_region=f.region))
+                plans[k] = (f, own_s, others_s)
             sources = [(r.pixels, f.region) for _, r in own_r]
             test_sources[k] = [im.path for im, _ in own_r]
             boxes = [f.region] * len(own_r)

@@ -8,7 +8,8 @@ inherits the builtin that matches it, so callers may catch either::
     ├── ModelError(ValueError)     the ONNX model cannot be used as an image classifier
     ├── DataError(ValueError)      the image set as a whole cannot be read (manifest, root)
     ├── ImageSkip(ValueError)      one image cannot be used; the audit lists it and goes on
-    └── OutputError(OSError)       results cannot be written (read-only folder, full disk)
+    ├── OutputError(OSError)       results cannot be written (read-only folder, full disk)
+    └── ClusterError(RuntimeError) the Dask cluster cannot run the audit
 
 Messages are one line: what is wrong, the value received, and what to do.
 """
@@ -22,6 +23,7 @@ __all__ = [
     "DataError",
     "ImageSkip",
     "OutputError",
+    "ClusterError",
 ]
 
 
@@ -52,3 +54,7 @@ class ImageSkip(AuditError, ValueError):
 
 class OutputError(AuditError, OSError):
     """Results cannot be written where asked."""
+
+
+class ClusterError(AuditError, RuntimeError):
+    """The cluster cannot run the audit (no workers, lost scheduler, different files)."""

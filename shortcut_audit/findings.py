@@ -30,6 +30,7 @@ __all__ = [
     "Finding",
     "FINDING_KINDS",
     "judge",
+    "not_judged",
 ]
 
 FINDING_KINDS = ("localized", "fixed-position", "recurring-motif", "background")
@@ -273,3 +274,26 @@ def judge(classes: list[ClassSummary], images: list[ImageSummary], *,
                 id="", class_name=cls.name, class_index=cls.index, kind="background", region=None,
                 evidence=ev, examples=tuple(im.path for im in members[:max_examples])))
     return found
+
+
+def not_judged(cls: ClassSummary, thresholds: Thresholds | None = None) -> tuple[str, ...]:
+    """Why the rules could not judge ``cls``, one reason each (empty: every rule ran).
+
+    A class with no finding reads as clean; this says where that reading would be
+    wrong: a class with too few correctly predicted images is judged by no rule, and
+    without an object mask (given or estimated) the background rule cannot run.
+
+    >>> from shortcut_audit.classes import ClassSummary
+    >>> c = ClassSummary(name="kite", index=0, images=1, correct=1, accuracy=1.0,
+    ...                  mean_confidence=0.9, mean_heatmap=None, metrics={"masked_images": 0})
+    >>> not_judged(c)[0]
+    'only 1 correctly predicted image (the rules need 5, min_correct_images)'
+    """
+    th = thresholds or Thresholds()
+    if cls.correct < th.min_correct_images:
+        n = cls.correct
+        return (f"only {n} correctly predicted image{'' if n == 1 else 's'} (the rules need "
+                f"{th.min_correct_images}, min_correct_images)",)
+    if not cls.metrics.get("masked_images"):
+        return ("background not judged: no object mask given or estimated (pass --masks)",)
+    return ()

@@ -41,7 +41,7 @@ from .report.words import (KIND_TITLES, STATUS_TITLES, finding_sentence, motif_o
                            where)
 from .store import inside, write_bytes_atomic
 
-__all__ = ["make_pack", "pack_members", "MANIFEST_COLUMNS", "MIN_REQUEST"]
+__all__ = ["make_pack", "pack_members", "is_lead", "MANIFEST_COLUMNS", "MIN_REQUEST"]
 
 #: Columns of every manifest.csv.
 MANIFEST_COLUMNS = ("file", "original", "class", "predicted", "confidence", "decisive_region",
@@ -221,8 +221,10 @@ def request_text(finding: dict, audit: dict, *, n_images: int, folder: str) -> s
                      + (f" and the other classes are at {fmt(ev.get('others_median'))}."
                         if _finite(ev.get("others_median")) else "."))
     p = p_value_of(finding)
+    lead = is_lead(finding)
+    heading = "Lead for review" if lead else "Data request"
     lines = [
-        f"# Data request: {_md(finding.get('id', '?'))}, {_md(cls)} ({_md(KIND_TITLES.get(kind, kind))})",
+        f"# {heading}: {_md(finding.get('id', '?'))}, {_md(cls)} ({_md(KIND_TITLES.get(kind, kind))})",
         "",
         "## What was found",
         "",
@@ -244,6 +246,21 @@ def request_text(finding: dict, audit: dict, *, n_images: int, folder: str) -> s
         f"This folder holds {n_images} flagged image(s): `images/` (the originals), `overlays/` "
         f"(where the model looks), `contact_sheet.png` and `manifest.csv` (one row each).",
         "",
+    ]
+    if lead:
+        lines += [
+            "## What to collect",
+            "",
+            "Nothing yet. This is a lead, not a request: "
+            + ("its counterfactual test did not bear it out" if finding.get("status") == "not-confirmed"
+               else "no counterfactual test has decided it")
+            + f", so the audit does not show that {_md(plural(cls))} rely on {thing}. Look at the "
+            "flagged images; ask for photos only if a reviewer sees a pattern that should not "
+            "decide the class, or run the audit with its tests to decide it.",
+            "",
+        ]
+        return "\n".join(lines)
+    lines += [
         "## What to collect",
         "",
         *[f"- {a}" for a in asks],
@@ -358,7 +375,8 @@ def pack_members(audit: dict, files: AuditFiles, findings: list[dict]) -> dict[s
     for folder, f in index:
         readme.append(f"- `{folder}/`: {_md(f.get('class', '?'))}, "
                       f"{_md(KIND_TITLES.get(f.get('kind'), f.get('kind')))} "
-                      f"({_md(STATUS_TITLES.get(f.get('status'), f.get('status')))})")
+                      f"({_md(STATUS_TITLES.get(f.get('status'), f.get('status')))})"
+                      + (": a lead for review, no photos requested" if is_lead(f) else ""))
     members["README.md"] = ("\n".join(readme) + "\n").encode("utf-8")
     for name in members:
         parts = PurePosixPath(name).parts
@@ -429,8 +447,13 @@ def _zip_bytes(top: str, members: dict[str, bytes]) -> bytes:
     return buf.getvalue()
 
 
+def is_lead(finding: dict) -> bool:
+    """A finding that no counterfactual test confirmed: a lead for review, not a request."""
+    return finding.get("status") != "confirmed"
+
+
 def make_pack(audit_dir: str | os.PathLike, out: str | os.PathLike, *, finding: str | None = None,
-              images: str | os.PathLike | None = None) -> Path:
+              images: str | os.PathLike | None = None, leads: bool = False) -> Path:
     """Write the evidence pack of an audit's findings.
 
     Parameters
@@ -441,7 +464,10 @@ def make_pack(audit_dir: str | os.PathLike, out: str | os.PathLike, *, finding: 
         A folder (created; an earlier pack in it is replaced), or a path ending in
         ``.zip`` for one zip file.
     finding : str, optional
-        One finding's id (``"F2"``); all findings by default.
+        One finding's id (``"F2"``), whatever its status; by default every confirmed one.
+    leads : bool
+        Also pack the findings no test confirmed (suspect, or cleared by their test),
+        each marked as a lead for review: its request.md asks for no photos.
     images : path, optional
         The dataset root, when it is no longer where audit.json says.
 
@@ -453,7 +479,8 @@ def make_pack(audit_dir: str | os.PathLike, out: str | os.PathLike, *, finding: 
     Raises
     ------
     UsageError
-        No audit.json in ``audit_dir``; an unknown ``finding``; an audit without findings;
+        No audit.json in ``audit_dir``; an unknown ``finding``; an audit without findings
+        (or, without ``leads``, without confirmed ones);
         an ``out`` that overlaps the image set or is a non-empty folder of other files.
     DataError
         audit.json is unreadable, or the images it refers to are not found.
@@ -473,11 +500,19 @@ def make_pack(audit_dir: str | os.PathLike, out: str | os.PathLike, *, finding: 
             raise UsageError(f"--finding {finding!r} is not a finding of this audit; "
                              f"its findings are: {', '.join(ids)}.")
         findings = chosen
+    elif not leads:
+        confirmed = [f for f in findings if not is_lead(f)]
+        if not confirmed:
+            raise UsageError(
+                f"the audit in {audit_dir} has no confirmed finding, so there is nothing to ask "
+                f"for yet; pass --leads to pack its {len(findings)} unconfirmed finding(s) for "
+                f"review, marked as leads.")
+        findings = confirmed
     files = AuditFiles(audit_dir, audit, images=images)
     if files.root is None:
         root = (audit.get("dataset") or {}).get("root")
         raise DataError(f"the images of the audit are not at {root}; pass --images with the "
-                        f"folder the scan read.")
+                        f"folder the audit read.")
     _check_out(out, audit_dir, files)
     as_zip = out.suffix.lower() == ".zip"
     if as_zip and out.is_dir():

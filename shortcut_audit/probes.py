@@ -598,9 +598,13 @@ def background_swap_job(*, own: Sequence[tuple[np.ndarray, np.ndarray, int]],
 
     - Test arm ("to"): other classes' objects over the suspect class's backgrounds; a
       hit is a prediction that moves *to* ``suspect``.
-    - Control: the same recipients over the background of another random image of
-      their own class (any other image when the class has only one); a hit there is a
-      move to ``suspect`` by chance.
+    - Control: the same recipients over the background of an image of a third class
+      (neither ``suspect`` nor their own); a hit there is a move to ``suspect`` that
+      any unfamiliar background causes. This control tells a class whose backgrounds
+      carry it from a *sink*: a clean class the model falls back on whenever a
+      recipient loses its own background (and with it, say, a mark of its own class).
+      With only two classes there is no third: the control then uses another image of
+      the recipient's own class.
     - "Away" arm (in ``extra``): the suspect class's objects over other classes'
       backgrounds; a hit is a prediction that moves *away* from ``suspect``; its
       control uses backgrounds of other images of the suspect class.
@@ -667,8 +671,9 @@ def background_swap_job(*, own: Sequence[tuple[np.ndarray, np.ndarray, int]],
     donor = [own_ok[int(rng.integers(len(own_ok)))] for _ in range(trials)]
     ctrl = []
     for r in rec:
+        third = [j for j in oth_ok if oth_l[j] != oth_l[r]]
         same = [j for j in oth_ok if j != r and oth_l[j] == oth_l[r]]
-        pool = same or [j for j in oth_ok if j != r] or [r]
+        pool = third or same or [r]
         ctrl.append(pool[int(rng.integers(len(pool)))])
     # "away" arm and its control
     obj = [own_ok[k] for k in _cycle(rng, len(own_ok), trials)]

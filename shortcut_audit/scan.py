@@ -28,13 +28,13 @@ from .classes import ClassAccumulator, ClassSummary, ImageSummary, summarise_cla
 from .dataset import ImageEntry, ImageRecord, Skip, class_names, iter_records, list_images
 from .engine import PassEngine, make_scorer
 from .errors import AuditError, DataError, ImageSkip, UsageError
-from .findings import Finding, Thresholds, judge
+from .findings import Finding, Thresholds, judge, not_judged
 from .model import ModelConfig, OnnxClassifier
 from .occlusion import Fill, GridPlan, Plan, RandomPatchPlan, SmoothMaskPlan
 from .sensitivity import ImageStats, estimate_object_mask, image_job
 from .store import ResultStore, remove_stale_temporaries, write_json
 
-__all__ = ["ScanSettings", "AuditResult", "scan", "analyse_entries", "DEFAULT_PLAN", "DEFAULT_FILL", "make_scorer"]
+__all__ = ["ScanSettings", "AuditResult", "audit", "analyse_entries", "DEFAULT_PLAN", "DEFAULT_FILL", "make_scorer"]
 
 #: 8-pixel patches at stride 4 on a 64-pixel input: 225 passes an image.
 DEFAULT_PLAN = GridPlan(patch=0.125, stride=0.0625)
@@ -52,7 +52,7 @@ class ScanSettings:
     score: str = "prob"
     thresholds: Thresholds = field(default_factory=Thresholds)
     confirm: bool = True
-    probe_budget: int = 40
+    test_budget: int = 40
     per_class: int | None = None
     tolerance: float | None = None
 
@@ -64,8 +64,8 @@ class ScanSettings:
             raise UsageError(f"--score must be prob or logit; got {self.score!r}.")
         if not isinstance(self.seed, int) or isinstance(self.seed, bool):
             raise UsageError(f"--seed must be a whole number; got {self.seed!r}.")
-        if not isinstance(self.probe_budget, int) or self.probe_budget < 4:
-            raise UsageError(f"--probe-budget must be a whole number of at least 4; got {self.probe_budget!r}.")
+        if not isinstance(self.test_budget, int) or self.test_budget < 4:
+            raise UsageError(f"--test-budget must be a whole number of at least 4; got {self.test_budget!r}.")
         if self.per_class is not None and (not isinstance(self.per_class, int) or self.per_class < 1):
             raise UsageError(f"--per-class must be a whole number of at least 1; got {self.per_class!r}.")
         # One seed for everything random: the plan's and the noise fill's follow it.
@@ -77,7 +77,7 @@ class ScanSettings:
     def to_dict(self) -> dict:
         return {"plan": self.plan.to_dict(), "fill": self.fill.to_dict(), "seed": self.seed,
                 "score": self.score, "thresholds": self.thresholds.to_dict(),
-                "confirm": self.confirm, "probe_budget": self.probe_budget,
+                "confirm": self.confirm, "test_budget": self.test_budget,
                 "per_class": self.per_class, "tolerance": self.tolerance}
 
 
@@ -105,7 +105,8 @@ class AuditResult:
             "settings": self.settings.to_dict(),
             "classes": [{"name": c.name, "images": c.images, "correct": c.correct,
                          "accuracy": c.accuracy, "mean_confidence": c.mean_confidence,
-                         "place_box": c.place_box, "metrics": c.metrics} for c in self.classes],
+                         "place_box": c.place_box, "metrics": c.metrics,
+                         "not_judged": list(c.not_judged)} for c in self.classes],
             "findings": [f.to_dict() for f in self.findings],
             "images": [_image_dict(im, labels) for im in self.images],
             "skipped": [{"path": s.path, "reason": s.reason} for s in self.skipped],
@@ -133,7 +134,7 @@ def _image_dict(im: ImageSummary, labels: Sequence[str]) -> dict:
 def _fingerprint(classifier: OnnxClassifier, settings: ScanSettings, masks: Any) -> dict:
     s = settings.to_dict()
     # Thresholds and confirmation do not change per-image results: they stay out.
-    for key in ("thresholds", "confirm", "probe_budget", "per_class"):
+    for key in ("thresholds", "confirm", "test_budget", "per_class"):
         s.pop(key)
     return {"schema": SCHEMA, "model_sha256": classifier.sha256,
             "model": _model_description(classifier), "settings": s, "masks": bool(masks)}
@@ -191,7 +192,7 @@ def _crop(pixels: np.ndarray, box: list[float] | None) -> np.ndarray:
     return pixels[r0:r1, c0:c1].astype(np.float32)
 
 
-def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *,
+def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *,
          out: str | os.PathLike | None = None,
          masks: str | os.PathLike | None = None,
          manifest: str | os.PathLike | None = None,
@@ -334,6 +335,7 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
             crops[e.path] = arrays["crop"]
     skipped.sort(key=lambda s: s.path)
     classes = summarise_classes(summaries, classifier.labels, accumulator=acc, shape=shape)
+    classes = [dataclasses.replace(c, not_judged=not_judged(c, settings.thresholds)) for c in classes]
     findings = judge(classes, summaries, thresholds=settings.thresholds)
     by_path = {e.path: e for e in usable}
     findings = add_motif_findings(findings, classes, summaries, by_path, classifier,
@@ -342,7 +344,7 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
     if settings.confirm:
         findings = confirm_findings(findings, summaries, by_path, classifier,
                                     thresholds=settings.thresholds, fill=settings.fill,
-                                    budget=settings.probe_budget, seed=settings.seed,
+                                    budget=settings.test_budget, seed=settings.seed,
                                     progress=progress, known_scores=known_scores)
 
     elapsed = time.perf_counter() - t_start

@@ -18,7 +18,7 @@ from .demo import demo_paths
 from .errors import DataError
 from .model import ModelConfig, read_model_config
 from .pack import make_pack
-from .scan import ScanSettings, scan
+from .scan import ScanSettings, audit
 
 __all__ = ["run_demo"]
 
@@ -54,7 +54,7 @@ def run_demo(out: str | os.PathLike, *, settings: ScanSettings | None = None,
             if progress is not None:
                 progress(dict(event, phase=f"{name}: {event.get('phase', '')}"))
 
-        audits[name] = scan(paths.images, model.onnx, out=out / name, masks=paths.masks,
+        audits[name] = audit(paths.images, model.onnx, out=out / name, masks=paths.masks,
                             model_config=cfg, settings=settings, progress=tagged)
     comparisons = {}
     for name in ("dropout", "rebalanced"):

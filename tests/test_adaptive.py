@@ -18,7 +18,7 @@ from shortcut_audit.errors import UsageError
 from shortcut_audit.occlusion import (AdaptivePlan, Fill, GridPlan, RandomPatchPlan,
                                       SmoothMaskPlan, box_weights, fill_image, paste_boxes,
                                       pass_count, patch_boxes, perturb, plan_from_dict)
-from shortcut_audit.scan import ScanSettings, scan
+from shortcut_audit.scan import ScanSettings, audit as run_audit
 from shortcut_audit.sensitivity import heatmap_job, image_job, occlusion_heatmap, peak_box
 
 BLACK = Fill(kind="constant", value=0.0)
@@ -202,7 +202,7 @@ def test_image_job_and_the_engine_take_an_adaptive_plan():
 def test_scan_with_the_adaptive_plan_flags_the_planted_corner(tmp_path):
     # The same finding as the exhaustive grid in test_scan.py, at a quarter of the passes.
     data = make_dataset(tmp_path / "data", n=8)
-    result = scan(data, corner_model(tmp_path / "m.onnx"),
+    result = run_audit(data, corner_model(tmp_path / "m.onnx"),
                   settings=ScanSettings(plan=AdaptivePlan(), confirm=False), report=False)
     kinds = {(f.class_name, f.kind) for f in result.findings}
     assert ("alpha", "fixed-position") in kinds

@@ -25,10 +25,10 @@ def test_public_api_is_guarded():
     # every name in __all__ exists; the list is what the README documents
     for name in shortcut_audit.__all__:
         assert hasattr(shortcut_audit, name), name
-    assert {"scan", "OnnxClassifier", "GridPlan", "Fill", "AuditError"} <= set(shortcut_audit.__all__)
+    assert {"audit", "OnnxClassifier", "GridPlan", "Fill", "AuditError"} <= set(shortcut_audit.__all__)
 
 
-@pytest.mark.parametrize("command", ["inspect", "heatmap", "scan"])
+@pytest.mark.parametrize("command", ["inspect", "heatmap", "audit"])
 def test_help_has_examples(command):
     result = runner.invoke(app, [command, "--help"])
     assert result.exit_code == 0
@@ -36,8 +36,8 @@ def test_help_has_examples(command):
 
 
 @pytest.mark.parametrize("command, shown", [
-    ("scan", "onnxruntime threads [default: all cores]"),
-    ("scan", "Grid step [default: half the patch]"),
+    ("audit", "onnxruntime threads [default: all cores]"),
+    ("audit", "Grid step [default: half the patch]"),
     ("heatmap", "Class to explain (name) [default: the prediction]"),
     ("pack", "Only this finding (e.g. F2) [default: all]"),
 ])
@@ -81,11 +81,11 @@ def test_heatmap_writes_three_files(setup):
 
 def test_scan_exit_codes(setup):
     tmp, data, model = setup
-    r = runner.invoke(app, ["scan", str(data), "-m", str(model), "-o", str(tmp / "a1"),
+    r = runner.invoke(app, ["audit", str(data), "-m", str(model), "-o", str(tmp / "a1"),
                             "--no-confirm", "--no-report", "--fail-on", "suspect"])
     assert r.exit_code == 1, r.output
     assert "fixed-position" in r.output
-    r = runner.invoke(app, ["scan", str(data), "-m", str(model), "-o", str(tmp / "a1"),
+    r = runner.invoke(app, ["audit", str(data), "-m", str(model), "-o", str(tmp / "a1"),
                             "--no-confirm", "--no-report", "--fail-on", "never"])
     assert r.exit_code == 0, r.output
     assert json.loads((tmp / "a1" / "audit.json").read_text())["findings"][0]["class"] == "alpha"
@@ -99,7 +99,7 @@ def test_scan_exit_codes(setup):
 ])
 def test_scan_usage_errors_are_one_line_exit_2(setup, args, message):
     tmp, data, model = setup
-    r = runner.invoke(app, ["scan", str(data), "-m", str(model), "-o", str(tmp / "bad"),
+    r = runner.invoke(app, ["audit", str(data), "-m", str(model), "-o", str(tmp / "bad"),
                             "--no-confirm"] + args)
     assert r.exit_code == 2, r.output
     assert message in r.output
@@ -133,6 +133,6 @@ def test_tolerance_stops_a_random_plan_and_is_refused_for_a_grid(setup):
     info = json.loads((out / "heatmap.json").read_text())
     assert info["tolerance"] == 0.3 and info["passes"] < 3001
     assert info["error_estimate"] < 0.3
-    r = runner.invoke(app, ["scan", str(data), "-m", str(model), "-o", str(tmp / "tol-grid"),
+    r = runner.invoke(app, ["audit", str(data), "-m", str(model), "-o", str(tmp / "tol-grid"),
                             "--tolerance", "0.1"])
     assert r.exit_code == 2 and "--tolerance applies to --plan random or rise" in r.output

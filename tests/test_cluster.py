@@ -33,7 +33,7 @@ from shortcut_audit.dataset import Skip, list_images  # noqa: E402
 from shortcut_audit.errors import ModelError, UsageError  # noqa: E402
 from shortcut_audit.model import ModelConfig, OnnxClassifier  # noqa: E402
 from shortcut_audit.occlusion import GridPlan  # noqa: E402
-from shortcut_audit.scan import ScanSettings, analyse_entries, scan  # noqa: E402
+from shortcut_audit.scan import ScanSettings, analyse_entries, audit as run_audit  # noqa: E402
 from shortcut_audit.store import dumps, to_jsonable  # noqa: E402
 
 # the module (the package re-exports the function scan under the same name)
@@ -93,11 +93,11 @@ def threads_cluster():
 
 @pytest.fixture
 def cluster_scan(monkeypatch):
-    """``run(data, model, out, address, **scan_kwargs)``: scan() with its per-image half
+    """``run(data, model, out, address, **scan_kwargs)``: run_audit() with its per-image half
     on ``address``, recording what each call submitted and what came back.
 
-    Once scan() has a ``cluster`` parameter it is called with it; until then
-    scan.analyse_entries is replaced by the call scan(cluster=...) makes."""
+    Once run_audit() has a ``cluster`` parameter it is called with it; until then
+    scan.analyse_entries is replaced by the call run_audit(cluster=...) makes."""
     submitted: list[list[str]] = []
     returned: Counter = Counter()
     live = []
@@ -117,13 +117,13 @@ def cluster_scan(monkeypatch):
         return g
 
     monkeypatch.setattr(cluster, "iter_cluster_results", recording)
-    wired = "cluster" in inspect.signature(scan_module.scan).parameters
+    wired = "cluster" in inspect.signature(scan_module.audit).parameters
     where = {}
     if not wired:
         local = scan_module.analyse_entries
 
         def analyse_on_cluster(todo, classifier, settings, *, estimate_masks, label_index, engine):
-            if "address" not in where:          # a plain local scan() in the same test
+            if "address" not in where:          # a plain local run_audit() in the same test
                 return local(todo, classifier, settings, estimate_masks=estimate_masks,
                              label_index=label_index, engine=engine)
             return cluster.iter_cluster_results(
@@ -135,10 +135,10 @@ def cluster_scan(monkeypatch):
     def run(data, model, out, address, **kwargs):
         kwargs = dict(dict(model_config=CONFIG, settings=FAST, report=False), **kwargs)
         if wired:
-            return scan_module.scan(data, model, out=out, cluster=address, **kwargs)
+            return scan_module.audit(data, model, out=out, cluster=address, **kwargs)
         where["address"] = address
         try:
-            return scan_module.scan(data, model, out=out, **kwargs)
+            return scan_module.audit(data, model, out=out, **kwargs)
         finally:
             where.clear()
 
@@ -172,7 +172,7 @@ def test_missing_dask_is_a_usage_error_naming_the_extra(monkeypatch, tmp_path):
 def test_local_cluster_of_two_workers_gives_the_same_audit_json(tmp_path, cluster_scan):
     data = make_dataset(tmp_path / "data", n=8)
     m = corner_model(tmp_path / "m.onnx")
-    ref = scan(data, m, out=tmp_path / "local", model_config=CONFIG, settings=FAST, report=False)
+    ref = run_audit(data, m, out=tmp_path / "local", model_config=CONFIG, settings=FAST, report=False)
     got = cluster_scan(data, m, tmp_path / "cluster", "local:2")
     # the audit is not trivially empty: the planted corner is found (test_scan.py)
     assert [(f.class_name, f.kind) for f in got.findings] == [("alpha", "fixed-position")]
@@ -187,7 +187,7 @@ def test_local_cluster_of_two_workers_gives_the_same_audit_json(tmp_path, cluste
 def test_interrupted_cluster_scan_resumes_with_only_the_missing_images(tmp_path, cluster_scan, workers):
     data = make_dataset(tmp_path / "data", n=8)
     m = corner_model(tmp_path / "m.onnx")
-    scan(data, m, out=tmp_path / "local", model_config=CONFIG, settings=FAST, report=False)
+    run_audit(data, m, out=tmp_path / "local", model_config=CONFIG, settings=FAST, report=False)
     address = workers.scheduler.address
 
     class Stop(Exception):
@@ -281,7 +281,7 @@ def test_worker_killed_midway_loses_nothing_and_counts_nothing_twice(tmp_path, c
     settings = ScanSettings(confirm=False, plan=GridPlan(patch=4, stride=1))
     data = make_dataset(tmp_path / "data", n=12)
     m = corner_model(tmp_path / "m.onnx")
-    scan(data, m, out=tmp_path / "local", model_config=CONFIG, settings=settings, report=False)
+    run_audit(data, m, out=tmp_path / "local", model_config=CONFIG, settings=settings, report=False)
     pids = workers.run(os.getpid)
     killed = []
 

@@ -21,7 +21,7 @@ from shortcut_audit.compare import (CompareResult, compare, compare_audits, bino
 from shortcut_audit.errors import UsageError
 from shortcut_audit.model import ModelConfig
 from shortcut_audit.report.compare_page import render_compare_page
-from shortcut_audit.scan import ScanSettings, scan
+from shortcut_audit.scan import ScanSettings, audit as run_audit
 
 FAST = ScanSettings(confirm=False)
 
@@ -270,7 +270,7 @@ def test_page_escapes_names_from_the_data(planted):
 
 def test_audits_of_different_images_are_refused(planted, tmp_path):
     # A real scan of the same set capped at 6 images a class: 6 of alpha's 8 and so on.
-    fewer = scan(planted["data"], planted["clean"], out=tmp_path / "fewer",
+    fewer = run_audit(planted["data"], planted["clean"], out=tmp_path / "fewer",
                  settings=ScanSettings(confirm=False, per_class=6), report=False)
     assert len(fewer.images) == 18
     with pytest.raises(UsageError, match=r"not of the same images: 6 only in the before audit \(alpha/alpha_06.png"):
@@ -320,3 +320,33 @@ def test_compare_again_reuses_both_scans(planted):
         assert audit["run"]["resumed_images"] == 24
     assert [(f.class_name, f.verdict) for f in r.findings] == [("alpha", "resolved")]
     assert r.findings[0].statistic.before == planted["result"].findings[0].statistic.before
+
+
+def test_cli_model_options_apply_to_both_models_and_per_model_files_override(planted, tmp_path):
+    # Reference: the options given. --threads and --batch-size are shared model options;
+    # --after-config sets the after model's batch size only, so the two audits must
+    # record 1 thread each and batch sizes 4 (before) and 8 (after).
+    from typer.testing import CliRunner
+
+    from shortcut_audit.cli import app
+
+    after_cfg = tmp_path / "after.toml"
+    after_cfg.write_text("batch_size = 8\n", encoding="utf-8")
+    out = tmp_path / "cmp"
+    r = CliRunner().invoke(app, ["compare", str(planted["data"]), "--before", str(planted["corner"]),
+                                 "--after", str(planted["clean"]), "-o", str(out), "--no-confirm",
+                                 "--threads", "1", "--batch-size", "4", "--after-config", str(after_cfg),
+                                 "--resamples", "100", "--patch", "8"])
+    assert r.exit_code == 0, r.output
+    before = json.loads((out / "before" / "audit.json").read_text())
+    after = json.loads((out / "after" / "audit.json").read_text())
+    assert (before["run"]["threads"], before["run"]["batch_size"]) == (1, 4)
+    assert (after["run"]["threads"], after["run"]["batch_size"]) == (1, 8)
+    # the occlusion options reach both audits too
+    assert before["settings"]["plan"]["patch"] == after["settings"]["plan"]["patch"] == 8
+
+
+def test_the_page_names_a_resolved_finding_by_its_verdict(planted):
+    # The verdict's own word: the corner finding is resolved, and the page says so.
+    html = render_compare_page(planted["result"])
+    assert "Resolved: alpha" in html and "Removed" not in html

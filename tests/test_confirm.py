@@ -10,7 +10,7 @@ from scan_fixtures import corner_model, make_dataset
 from test_motifs import MARK, mark_images, mark_model
 from shortcut_audit.dataset import load_image
 from shortcut_audit.occlusion import GridPlan
-from shortcut_audit.scan import ScanSettings, scan
+from shortcut_audit.scan import ScanSettings, audit as run_audit
 
 
 def _write(root, images, labels, names=("marked", "reddish", "bluish")):
@@ -28,8 +28,8 @@ def test_a_roaming_mark_is_found_as_a_motif_and_confirmed(tmp_path):
     images, labels, _ = mark_images(3, n_marked=14, n_other=16)
     data = _write(tmp_path / "data", images, labels)
     model = save(mark_model(), tmp_path / "mark.onnx", metadata={"labels": ["marked", "reddish", "bluish"]})
-    result = scan(data, model, out=tmp_path / "out", report=False,
-                  settings=ScanSettings(plan=GridPlan(patch=4, stride=2), probe_budget=30))
+    result = run_audit(data, model, out=tmp_path / "out", report=False,
+                  settings=ScanSettings(plan=GridPlan(patch=4, stride=2), test_budget=30))
     motifs = [f for f in result.findings if f.kind == "recurring-motif"]
     assert [f.class_name for f in motifs] == ["marked"]
     f = motifs[0]
@@ -47,7 +47,7 @@ def test_a_roaming_mark_is_found_as_a_motif_and_confirmed(tmp_path):
 
 def test_planted_corner_is_confirmed_by_transplant_and_removal(tmp_path):
     data = make_dataset(tmp_path / "data", n=10)
-    result = scan(data, corner_model(tmp_path / "m.onnx"), report=False)
+    result = run_audit(data, corner_model(tmp_path / "m.onnx"), report=False)
     (f,) = result.findings
     assert f.kind == "fixed-position" and f.status == "confirmed"
     test = f.evidence["test"]

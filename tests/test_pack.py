@@ -23,7 +23,7 @@ from shortcut_audit.errors import DataError, UsageError
 from shortcut_audit.pack import MANIFEST_COLUMNS, _csv_cell, make_pack
 from shortcut_audit.report.figures import safe_name
 from shortcut_audit.report.words import STATUS_TITLES, pval, status_sentence
-from shortcut_audit.scan import scan
+from shortcut_audit.scan import audit as run_audit
 
 HOSTILE_CLASS = '"><img src=x onerror=alert(1)>'
 HOSTILE_FILES = ('a..b & "q".png', "-rf $HOME.png", "CON.png", "ümlaut `x`.png")
@@ -44,7 +44,7 @@ def corner(tmp_path_factory) -> tuple[Path, Path]:
     tmp = tmp_path_factory.mktemp("corner")
     data = make_dataset(tmp / "data", n=8)
     out = tmp / "audit"
-    scan(data, corner_model(tmp / "m.onnx"), out=out, report=False)
+    run_audit(data, corner_model(tmp / "m.onnx"), out=out, report=False)
     return data, out
 
 
@@ -70,7 +70,7 @@ def more(corner, tmp_path_factory) -> tuple[Path, Path]:
     """The corner audit with two more findings, and its pack."""
     tmp = tmp_path_factory.mktemp("more")
     audit_dir = with_more_findings(corner[1], tmp / "audit")
-    return audit_dir, make_pack(audit_dir, tmp / "pack")
+    return audit_dir, make_pack(audit_dir, tmp / "pack", leads=True)
 
 
 @pytest.fixture(scope="module")
@@ -88,7 +88,7 @@ def hostile(tmp_path_factory) -> tuple[Path, Path]:
     model = corner_model(tmp / "m.onnx")
     save(onnx.load(str(model)), model, metadata={"labels": [HOSTILE_CLASS, "beta", "gamma"]})
     out = tmp / "audit"
-    scan(data, model, out=out, report=False)
+    run_audit(data, model, out=out, report=False)
     return data, out
 
 
@@ -256,8 +256,8 @@ def test_csv_cells_that_would_run_as_formulas_are_quoted():
 
 # ------------------------------------------------------------------------ errors
 
-def test_no_audit_json_says_to_run_scan_first(tmp_path):
-    with pytest.raises(UsageError, match=r"^no audit\.json in .*; run `shortcut-audit scan"):
+def test_no_audit_json_says_to_run_an_audit_first(tmp_path):
+    with pytest.raises(UsageError, match=r"^no audit\.json in .*; run `shortcut-audit audit"):
         make_pack(tmp_path, tmp_path / "pack")
 
 
@@ -291,7 +291,7 @@ def test_moved_images_need_the_images_option(corner, tmp_path):
     audit = json.loads((moved / "audit.json").read_text())
     audit["dataset"]["root"] = str(tmp_path / "gone")
     (moved / "audit.json").write_text(json.dumps(audit))
-    with pytest.raises(DataError, match="pass --images with the folder the scan read"):
+    with pytest.raises(DataError, match="pass --images with the folder the audit read"):
         make_pack(moved, tmp_path / "pack")
     out = make_pack(moved, tmp_path / "pack", images=data)
     assert len(manifest(out / "F1-fixed-position-alpha")) == 8
@@ -306,3 +306,38 @@ def test_audit_without_findings_has_nothing_to_pack(corner, tmp_path):
     (clean / "audit.json").write_text(json.dumps(audit))
     with pytest.raises(UsageError, match="has no findings; there is nothing to pack"):
         make_pack(clean, tmp_path / "pack")
+
+
+# ------------------------------------------------------------- leads and requests
+
+def test_by_default_the_pack_holds_confirmed_findings_only(more, tmp_path):
+    # F1 (the corner) and F2 (background) are confirmed, F3 is a suspect no test decided.
+    audit_dir, _ = more
+    out = make_pack(audit_dir, tmp_path / "pack")
+    assert sorted(p.name for p in out.iterdir() if p.is_dir()) == [
+        "F1-fixed-position-alpha", "F2-background-beta"]
+    assert "F3" not in (out / "README.md").read_text()
+
+
+def test_a_lead_asks_for_no_photos(more):
+    _, out = more
+    lead = (out / "F3-recurring-motif-gamma" / "request.md").read_text()
+    request = (out / "F2-background-beta" / "request.md").read_text()
+    assert lead.startswith("# Lead for review: F3") and "Nothing yet" in lead
+    assert "At least **" not in lead
+    assert request.startswith("# Data request: F2") and "At least **" in request
+    assert "a lead for review, no photos requested" in (out / "README.md").read_text()
+
+
+def test_an_audit_without_confirmed_findings_packs_only_on_request(more, tmp_path):
+    audit_dir = tmp_path / "audit"
+    shutil.copytree(more[0], audit_dir)
+    audit = json.loads((audit_dir / "audit.json").read_text())
+    for f in audit["findings"]:
+        f["status"] = "not-confirmed"
+    (audit_dir / "audit.json").write_text(json.dumps(audit))
+    with pytest.raises(UsageError, match=r"no confirmed finding.*pass --leads to pack its 3 unconfirmed"):
+        make_pack(audit_dir, tmp_path / "pack")
+    out = make_pack(audit_dir, tmp_path / "pack", leads=True)
+    text = (out / "F1-fixed-position-alpha" / "request.md").read_text()
+    assert "its counterfactual test did not bear it out" in text

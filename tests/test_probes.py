@@ -525,3 +525,46 @@ def test_known_scores_are_checked(mark_setup, scores, match):
     with pytest.raises(UsageError, match=match):
         transplant_job(sources=_medoid_source(mark_setup), targets=_targets(mark_setup), suspect=0,
                        placement="on-object", trials=4, target_scores=scores)
+
+
+def sink_images(seed: int, per_class: int = 8):
+    """Three classes of discs on plain grey: class 1 carries a white 4x4 corner mark in
+    its backdrop, class 2 has a blue disc, class 0 a grey-red disc and nothing else."""
+    rng = np.random.default_rng(seed)
+    yy, xx = np.mgrid[:SIDE, :SIDE]
+    out = []
+    for label in (0, 1, 2):
+        for _ in range(per_class):
+            cy, cx = 15.5 + rng.uniform(-2, 2, 2)
+            mask = np.hypot(yy - cy, xx - cx) <= 8
+            img = np.full((SIDE, SIDE, 3), 128.0) + rng.normal(0, 4, (SIDE, SIDE, 3))
+            img[mask] = (60.0, 60.0, 220.0) if label == 2 else (150.0, 110.0, 110.0)
+            if label == 1:
+                img[:4, :4] = 250.0
+            out.append((np.clip(img, 0, 255).astype(np.float32), mask, label))
+    return out
+
+
+def sink_predict(batch: np.ndarray) -> np.ndarray:
+    """Class 1 from the corner mark alone, class 2 from a blue object, else class 0: the
+    class the model falls back on (a sink). Class 0's backgrounds carry nothing."""
+    corner = batch[:, :4, :4].mean(axis=(1, 2, 3)) > 200
+    blue = batch[:, 12:20, 12:20, 2].mean(axis=(1, 2)) > batch[:, 12:20, 12:20, 0].mean(axis=(1, 2)) + 40
+    label = np.where(corner, 1, np.where(blue, 2, 0))
+    return np.eye(3, dtype=np.float32)[label]
+
+
+def test_background_swap_clears_a_sink_class():
+    # Worked by hand: class 1's objects lose their corner mark on ANY foreign background
+    # and fall to class 0. Onto class 0's backgrounds that is half the recipients (the
+    # class-1 half); onto a third class's backgrounds (the control) the class-1
+    # recipients on class-2 backgrounds fall the same way. So the test rate and the
+    # control rate are alike and class 0's backgrounds are not what moves them.
+    data = sink_images(0)
+    assert [int(np.argmax(p)) for p in sink_predict(np.stack([d[0] for d in data]))] == [d[2] for d in data]
+    job = background_swap_job(own=[d for d in data if d[2] == 0],
+                              others=[d for d in data if d[2] != 0], suspect=0, trials=40, seed=0)
+    r = run_job(sink_predict, job)
+    assert 0.3 <= r.rate <= 0.7
+    assert abs(r.rate - r.control_rate) <= 0.25
+    assert r.status() == "not-confirmed"

@@ -42,7 +42,7 @@ from shortcut_audit.cli import app
 from shortcut_audit.errors import DataError, OutputError
 from shortcut_audit.model import ModelConfig
 from shortcut_audit.occlusion import Fill, GridPlan, RandomPatchPlan, SmoothMaskPlan
-from shortcut_audit.scan import ScanSettings, scan
+from shortcut_audit.scan import ScanSettings, audit as run_audit
 
 runner = CliRunner()
 TESTS = Path(__file__).resolve().parent
@@ -56,7 +56,7 @@ CFG = ModelConfig(threads=1, batch_size=16)
 PLAN_ARGS = ["--no-confirm", "--no-report", "--patch", "4", "--stride", "4"]
 MODEL_ARGS = ["--threads", "1", "--batch-size", "16"]
 FAST_ARGS = PLAN_ARGS + MODEL_ARGS
-PROGRESS = re.compile(r"^scan images\b")  # the progress bar's final render, on stderr
+PROGRESS = re.compile(r"^audit images\b")  # the progress bar's final render, on stderr
 
 
 # ------------------------------------------------------------------------ helpers
@@ -203,7 +203,7 @@ def assert_one_line_error(result, *needles: str) -> str:
 
 
 def run_cli(*args: str):
-    return runner.invoke(app, ["scan", *map(str, args)])
+    return runner.invoke(app, ["audit", *map(str, args)])
 
 
 # --------------------------------------------------------------- the mixed folder
@@ -247,7 +247,7 @@ def mixed(tmp_path_factory):
     Image.fromarray(np.full((4, 4), 25700, np.uint16)).save(data / "bowl" / "gray16_flat.png")
     expected["bowl/gray16_flat.png"] = ("ok", "")
     model = probe_model(tmp / "probe.onnx")
-    result = scan(data, model, out=tmp / "api", settings=FAST, model_config=CFG, report=False)
+    result = run_audit(data, model, out=tmp / "api", settings=FAST, model_config=CFG, report=False)
     cli_result = run_cli(data, "-m", model, "-o", tmp / "cli", *FAST_ARGS)
     return {"tmp": tmp, "data": data, "model": model, "expected": expected, "result": result,
             "audit": json.loads(audit_text(tmp / "api")), "ref": without_run(audit_text(tmp / "api")),
@@ -352,7 +352,7 @@ def test_manifest_rows_that_are_bad_are_skipped_and_good_rows_audited(tmp_path):
     manifest = _manifest_tree(data)
     model = probe_model(tmp_path / "m.onnx", labels=["bowl", "mug", "vase"])
     before = snapshot(tmp_path)
-    result = scan(data, model, manifest=manifest, out=tmp_path / "out", settings=FAST,
+    result = run_audit(data, model, manifest=manifest, out=tmp_path / "out", settings=FAST,
                   model_config=CFG, report=False)
     assert [(im.path, im.label) for im in result.images] == [("bowl/a.png", 0), ("mug/a.png", 1)]
     audit = json.loads(audit_text(tmp_path / "out"))
@@ -373,7 +373,7 @@ def test_manifest_with_missing_columns_is_a_one_line_error(tmp_path):
     manifest = bi.make_manifest_missing_columns(data)
     model = probe_model(tmp_path / "m.onnx", labels=["bowl", "mug", "vase"])
     with pytest.raises(DataError, match="needs the columns path,label"):
-        scan(data, model, manifest=manifest, settings=FAST, model_config=CFG)
+        run_audit(data, model, manifest=manifest, settings=FAST, model_config=CFG)
     r = run_cli(data, "-m", model, "-o", tmp_path / "out", "--manifest", manifest, *FAST_ARGS)
     assert_one_line_error(r, "needs the columns path,label", "found: file, class", "missing: path, label")
     assert not (tmp_path / "out").exists()
@@ -559,11 +559,11 @@ def test_ctrl_c_through_the_api_keeps_finished_images_and_resumes_to_the_same_au
                                               if s["path"] != "plate/" and "symlink" not in s["reason"])
     for n in (5, 17):
         with pytest.raises(KeyboardInterrupt):
-            scan(mixed["data"], mixed["model"], out=out, settings=FAST, model_config=CFG,
+            run_audit(mixed["data"], mixed["model"], out=out, settings=FAST, model_config=CFG,
                  report=False, progress=StopAfter(n))
         assert len(store_entries(out)) == n  # exactly the finished images, each complete
         assert not (out / "audit.json").exists()
-    final = scan(mixed["data"], mixed["model"], out=out, settings=FAST, model_config=CFG, report=False)
+    final = run_audit(mixed["data"], mixed["model"], out=out, settings=FAST, model_config=CFG, report=False)
     assert final.run["resumed_images"] == 17 and len(store_entries(out)) == total
     assert without_run(audit_text(out)) == mixed["ref"]
 
@@ -602,7 +602,7 @@ def slow_put(self, *args, **kwargs):
     time.sleep(0.1)  # so the scan cannot finish before the signal arrives
 store.ResultStore.put = slow_put
 from shortcut_audit.cli import main
-sys.argv = ["shortcut-audit", "scan"] + {args!r}
+sys.argv = ["shortcut-audit", "audit"] + {args!r}
 main()
 """
 
@@ -650,8 +650,8 @@ def replace(src, dst):
 os.replace = replace
 from shortcut_audit.model import ModelConfig
 from shortcut_audit.occlusion import GridPlan
-from shortcut_audit.scan import ScanSettings, scan
-scan({data!r}, {model!r}, out={out!r}, settings=ScanSettings(confirm=False, plan=GridPlan(patch=4, stride=4)),
+from shortcut_audit.scan import ScanSettings, audit as run_audit
+run_audit({data!r}, {model!r}, out={out!r}, settings=ScanSettings(confirm=False, plan=GridPlan(patch=4, stride=4)),
      model_config=ModelConfig(threads=1, batch_size=16), report=False)
 """
 
@@ -678,14 +678,14 @@ def test_sigkill_at_random_points_then_rerun_gives_the_same_audit(mixed, tmp_pat
     _killed_run(mixed, out, kill_name="audit.json")
     assert not (out / "audit.json").exists()  # never half a file: none at all
     assert [p.parent for p in temp_files(out)] == [out]
-    final = scan(mixed["data"], mixed["model"], out=out, settings=FAST, model_config=CFG, report=False)
+    final = run_audit(mixed["data"], mixed["model"], out=out, settings=FAST, model_config=CFG, report=False)
     assert final.run["passes_this_run"] == 0  # every image came from the store
     assert without_run(audit_text(out)) == mixed["ref"]
     assert temp_files(out) == []  # the rerun removed what the killed writers left
     # a kill while audit.json is rewritten leaves the previous audit.json whole
     _killed_run(mixed, out, kill_name="audit.json")
     assert without_run(audit_text(out)) == mixed["ref"]
-    scan(mixed["data"], mixed["model"], out=out, settings=FAST, model_config=CFG, report=False)
+    run_audit(mixed["data"], mixed["model"], out=out, settings=FAST, model_config=CFG, report=False)
     assert temp_files(out) == [] and without_run(audit_text(out)) == mixed["ref"]
 
 
@@ -701,7 +701,7 @@ def test_ctrl_c_during_a_write_leaves_no_temp_file(mixed, tmp_path, monkeypatch)
 
     monkeypatch.setattr(store.os, "fsync", fsync)
     with pytest.raises(KeyboardInterrupt):
-        scan(mixed["data"], mixed["model"], out=out, settings=FAST, model_config=CFG, report=False)
+        run_audit(mixed["data"], mixed["model"], out=out, settings=FAST, model_config=CFG, report=False)
     assert temp_files(out) == []
 
 
@@ -743,7 +743,7 @@ def test_output_folder_under_a_regular_file_is_a_one_line_error(mixed, tmp_path)
     blocker = tmp_path / "not_a_folder"
     blocker.write_text("x")
     with pytest.raises(OutputError, match="Pass an --out folder you can write to"):
-        scan(mixed["data"], mixed["model"], out=blocker / "sub", settings=FAST, model_config=CFG)
+        run_audit(mixed["data"], mixed["model"], out=blocker / "sub", settings=FAST, model_config=CFG)
     r = run_cli(mixed["data"], "-m", mixed["model"], "-o", blocker / "sub", *FAST_ARGS)
     assert_one_line_error(r, f"cannot write into {blocker / 'sub' / 'results'}", "Not a directory")
     r = run_cli(mixed["data"], "-m", mixed["model"], "-o", blocker, *FAST_ARGS)
@@ -771,10 +771,10 @@ def test_a_file_repaired_after_a_scan_is_read_again_on_rerun(tmp_path):
         Image.new("RGB", (8, 8), colour).save(data / cls / "a.png")
     bi.make_truncated_png(data / "mug", "b.png")
     model = probe_model(tmp_path / "m.onnx")
-    first = scan(data, model, out=tmp_path / "out", settings=FAST, model_config=CFG, report=False)
+    first = run_audit(data, model, out=tmp_path / "out", settings=FAST, model_config=CFG, report=False)
     assert [s.path for s in first.skipped] == ["mug/b.png"]
     Image.new("RGB", (8, 8), bi.GREEN).save(data / "mug" / "b.png")  # the user re-exports it
-    again = scan(data, model, out=tmp_path / "out", settings=FAST, model_config=CFG, report=False)
+    again = run_audit(data, model, out=tmp_path / "out", settings=FAST, model_config=CFG, report=False)
     assert again.skipped == [] and len(again.images) == 4
 
 
@@ -834,7 +834,7 @@ def test_hostile_labels_in_model_metadata_are_data_never_paths(tmp_path):
     out = tmp_path / "a" / "b" / "out"
     before = snapshot(tmp_path)
     r = run_cli(data, "-m", model, "-o", out, "--manifest", manifest, "--threads", "1",
-                "--batch-size", "16", "--patch", "4", "--stride", "4", "--probe-budget", "4")
+                "--batch-size", "16", "--patch", "4", "--stride", "4", "--test-budget", "4")
     assert r.exit_code in (0, 1) and "Traceback" not in r.output, r.output
     after = snapshot(tmp_path, skip=out)
     assert after == {**before, os.fsencode("a").hex(): ("dir",), os.fsencode("a/b").hex(): ("dir",)}
@@ -852,7 +852,7 @@ def test_class_folder_with_a_trailing_space_is_audited(tmp_path):
     for cls, colour in (("bowl", bi.RED), ("mug", bi.GREEN), ("vase ", bi.BLUE)):
         (data / cls).mkdir(parents=True)
         Image.new("RGB", (8, 8), colour).save(data / cls / "a.png")
-    result = scan(data, probe_model(tmp_path / "m.onnx"), settings=FAST, model_config=CFG)
+    result = run_audit(data, probe_model(tmp_path / "m.onnx"), settings=FAST, model_config=CFG)
     assert result.skipped == [] and len(result.images) == 3
 
 
@@ -901,7 +901,7 @@ def test_two_files_whose_shown_names_collide_are_not_merged(tmp_path):
     if bi.make_non_utf8_name(data / "mug") is None:
         pytest.skip("the file system refuses non-UTF-8 names")
     bi.make_tiny(data / "mug", bi.NON_UTF8_SHOWN, color=bi.BLUE)  # the name shown for the other one
-    result = scan(data, probe_model(tmp_path / "m.onnx"), settings=FAST, model_config=CFG)
+    result = run_audit(data, probe_model(tmp_path / "m.onnx"), settings=FAST, model_config=CFG)
     paths = [im.path for im in result.images]
     assert len(paths) == len(set(paths))
     assert len(result.images) + len(result.skipped) == 5
@@ -939,11 +939,11 @@ PLANS = {
 def test_same_inputs_and_seed_give_byte_identical_audits_across_runs_and_threads(planted, plan):
     tmp, data, model = planted
     the_plan, fill = PLANS[plan]
-    settings = ScanSettings(plan=the_plan, fill=fill, seed=3, probe_budget=8)
+    settings = ScanSettings(plan=the_plan, fill=fill, seed=3, test_budget=8)
     texts = []
     for run, threads in enumerate((1, 1, 2)):
         out = tmp / f"{plan}-{run}"
-        scan(data, model, out=out, settings=settings,
+        run_audit(data, model, out=out, settings=settings,
              model_config=ModelConfig(threads=threads, batch_size=32), report=False)
         texts.append(without_run(audit_text(out)))
     assert texts[0] == texts[1] == texts[2]
@@ -951,7 +951,7 @@ def test_same_inputs_and_seed_give_byte_identical_audits_across_runs_and_threads
     assert audit["settings"]["seed"] == 3 and len(audit["images"]) == 12
     if plan != "grid":  # the seed matters: another seed gives other numbers
         out = tmp / f"{plan}-seed4"
-        scan(data, model, out=out, settings=ScanSettings(plan=the_plan, fill=fill, seed=4, probe_budget=8),
+        run_audit(data, model, out=out, settings=ScanSettings(plan=the_plan, fill=fill, seed=4, test_budget=8),
              model_config=ModelConfig(threads=1, batch_size=32), report=False)
         other = json.loads(audit_text(out))
         concentration = [im["concentration"] for im in audit["images"]]
@@ -985,12 +985,12 @@ def test_soak_240_mixed_images_with_interruptions_loses_and_duplicates_nothing(t
     data = tmp_path / "data"
     good, bad = _soak_tree(data)
     model = probe_model(tmp_path / "m.onnx")
-    scan(data, model, out=tmp_path / "ref", settings=FAST, model_config=CFG, report=False)
+    run_audit(data, model, out=tmp_path / "ref", settings=FAST, model_config=CFG, report=False)
     ref = without_run(audit_text(tmp_path / "ref"))
     out = tmp_path / "out"
     for n in (40, 100, 160):  # three Ctrl-Cs, each run resuming the last
         with pytest.raises(KeyboardInterrupt):
-            scan(data, model, out=out, settings=FAST, model_config=CFG, report=False, progress=StopAfter(n))
+            run_audit(data, model, out=out, settings=FAST, model_config=CFG, report=False, progress=StopAfter(n))
         assert len(store_entries(out)) == n
     script = KILL_SCRIPT.format(tests=str(TESTS), data=str(data), model=str(model), out=str(out),
                                 kill_at=0, kill_name="")
@@ -1001,7 +1001,7 @@ def test_soak_240_mixed_images_with_interruptions_loses_and_duplicates_nothing(t
     proc.wait(timeout=60)
     assert proc.returncode == -signal.SIGKILL
     assert 170 <= len(store_entries(out)) < 240
-    final = scan(data, model, out=out, settings=FAST, model_config=CFG, report=False)
+    final = run_audit(data, model, out=out, settings=FAST, model_config=CFG, report=False)
     audit = json.loads(audit_text(out))
     images = [im["path"] for im in audit["images"]]
     skipped = [s["path"] for s in audit["skipped"]]

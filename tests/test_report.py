@@ -28,7 +28,7 @@ from shortcut_audit.report import html as report_html
 from shortcut_audit.report import render_report, words
 from shortcut_audit.report import scan_page
 from shortcut_audit.report.scan_page import report_plan, write_scan_report
-from shortcut_audit.scan import scan
+from shortcut_audit.scan import audit as run_audit
 from shortcut_audit.store import ResultStore
 
 HOSTILE_CLASS = '"><img src=x onerror=alert(1)>'
@@ -93,7 +93,7 @@ def hostile_scan(tmp: Path) -> tuple[Path, Path]:
     model = corner_model(tmp / "m.onnx")
     save(onnx.load(str(model)), model, metadata={"labels": [HOSTILE_CLASS, "beta", "gamma"]})
     out = tmp / "out"
-    scan(data, model, out=out)
+    run_audit(data, model, out=out)
     return data, out
 
 
@@ -102,7 +102,7 @@ def corner_audit(tmp_path_factory) -> Path:
     tmp = tmp_path_factory.mktemp("corner")
     make_dataset(tmp / "data", n=8)
     out = tmp / "out"
-    scan(tmp / "data", corner_model(tmp / "m.onnx"), out=out)
+    run_audit(tmp / "data", corner_model(tmp / "m.onnx"), out=out)
     return out
 
 
@@ -338,3 +338,20 @@ def test_doctests(module):
 def test_report_names_the_classes_of_the_fixture(corner_audit):
     audit, _ = read(corner_audit)
     assert [c["name"] for c in audit["classes"]] == list(CLASSES)
+
+
+def test_background_sentence_states_no_reliance_the_empty_scene_rate_explains():
+    # Worked example: plates stay plates in 100% of erased images, but 95% of other
+    # classes' erased images become plates too: no reliance of plate's own.
+    from shortcut_audit.report.words import finding_sentence
+
+    base = {"class": "plate", "kind": "background",
+            "evidence": {"statistic": "median_background_share", "value": 0.62,
+                         "median_background_share": 0.62}}
+    sink = dict(base, evidence=dict(base["evidence"], object_erased_survival=1.0, erased_default_rate=0.95))
+    own = dict(base, evidence=dict(base["evidence"], object_erased_survival=0.9, erased_default_rate=0.1))
+    text = finding_sentence(sink)
+    assert "empty scene" in text and "100%" in text and "95%" in text
+    assert "may read the surroundings" not in text
+    text = finding_sentence(own)
+    assert "may read the surroundings" in text and "(against 10% of other classes' images" in text

@@ -259,8 +259,8 @@ def _sentence(f) -> str:
     move = f"{_SHORT.get(d.name, d.label)} {_pct(d.before)} → {_pct(d.after)}"
     if f.verdict == "resolved":
         if f.after_status == "not-confirmed":
-            return f"Removed: {what}; still flagged by the heatmap rules, but its test now clears it ({move})."
-        return f"Removed: {what} ({move})."
+            return f"Resolved: {what}; still flagged by the heatmap rules, but its test now clears it ({move})."
+        return f"Resolved: {what} ({move})."
     if f.verdict == "cleared":
         return f"Never a confirmed shortcut: {what}; its test cleared it ({move})."
     if f.verdict == "new":

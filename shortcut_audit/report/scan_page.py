@@ -569,6 +569,9 @@ def render_report(audit: dict, figures: dict[str, bytes], *, timestamp: str | No
             "metrics": _metric_rows(c.get("metrics") or {}),
             "mean": _uri(figures, entry["mean"]), "scale": _uri(figures, entry["scale"]),
             "tiles": [_tile_view(p, n, images.get(p), figures) for p, n in zip(entry["paths"], entry["tiles"])],
+            "not_judged": [str(r) for r in c.get("not_judged") or []],
+            # no rule ran at all (too few correct images), as opposed to one rule not running
+            "unjudged": any("min_correct_images" in str(r) for r in c.get("not_judged") or []),
             "deletion_area": num((c.get("metrics") or {}).get("mean_deletion_area")),
             "insertion_area": num((c.get("metrics") or {}).get("mean_insertion_area")),
         })
@@ -593,6 +596,7 @@ def render_report(audit: dict, figures: dict[str, bytes], *, timestamp: str | No
         "findings": finding_views,
         "statuses": statuses,
         "flagged_classes": sum(1 for c in class_views if c["findings"]),
+        "unjudged_classes": [c for c in class_views if c["not_judged"]],
         "classes": class_views,
         "class_means": _uri(figures, "class-means"),
         "curves": _uri(figures, "curves"),

@@ -34,10 +34,10 @@ def read_audit(audit_dir: str | os.PathLike) -> dict:
     folder = Path(audit_dir)
     if not folder.is_dir():
         raise UsageError(f"{folder} is not a folder; pass the --out folder of a scan "
-                         f"(run `shortcut-audit scan IMAGES --model MODEL --out DIR` first).")
+                         f"(run `shortcut-audit audit IMAGES --model MODEL --out DIR` first).")
     path = folder / "audit.json"
     if not path.is_file():
-        raise UsageError(f"no audit.json in {folder}; run `shortcut-audit scan IMAGES --model MODEL "
+        raise UsageError(f"no audit.json in {folder}; run `shortcut-audit audit IMAGES --model MODEL "
                          f"--out {folder}` first, then pass that folder.")
     try:
         audit = json.loads(path.read_text(encoding="utf-8"))

@@ -44,6 +44,11 @@ STATISTIC_NAMES = {
 }
 
 
+#: Survival of erasing the object within this many points of the empty-scene rate is
+#: not stated as a reliance on the backdrop (the background_reliance_margin default).
+EMPTY_SCENE_MARGIN = 0.25
+
+
 def _finite(x) -> bool:
     return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
 
@@ -170,11 +175,20 @@ def finding_sentence(finding: dict) -> str:
                     f"object erased become {cls}: the model reads the surroundings, not the piece "
                     f"(heat outside the object: {pct(share)}, a backdrop spread everywhere moves "
                     f"little when one patch of it is hidden).")
+        head = (f"Most of what moves the model's answer for {cls} lies outside the object "
+                f"({pct(share)} of the heat)")
+        if _finite(survival) and _finite(default) and survival - default < EMPTY_SCENE_MARGIN:
+            # Survival that the empty-scene answer explains says nothing of this class's
+            # backgrounds: say so instead of stating a reliance.
+            return (f"{head}. With the object erased the answer stays {cls} in {pct(survival)} "
+                    f"of the images, but {pct(default)} of other classes' images also become "
+                    f"{cls} once their object is erased: {cls} is what the model answers for an "
+                    f"empty scene, which says nothing about its own backgrounds.")
         tail = (f", and the answer stays {cls} in {pct(survival)} of the images once the object "
-                f"is erased" if _finite(survival) else "")
-        return (f"Most of what moves the model's answer for {cls} lies outside the object "
-                f"({pct(share)} of the heat){tail}: the model reads the surroundings, "
-                f"not the piece.")
+                f"is erased" + (f" (against {pct(default)} of other classes' images once theirs "
+                                f"is)" if _finite(default) else "")
+                if _finite(survival) else "")
+        return f"{head}{tail}: the model may read the surroundings, not the piece."
     return f"The model's answers for {cls} depend on a pattern the rules flagged ({kind})."
 
 
