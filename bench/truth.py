@@ -151,12 +151,23 @@ def table(rows: list[dict], tot: dict) -> str:
         conf = "; ".join("yes" if p["confirmed"] else "no" for p in r["planted"]) or "-"
         ious = "; ".join("-" if p["box_iou"] is None else f"{p['box_iou']:.2f}"
                          for p in r["planted"] if p["planted"] == "fixed-mark") or "-"
-        lines.append((r["model"], planted, found, conf, ious, ", ".join(r["false_confirmed"]) or "0",
-                      ", ".join(r["cleared"]) or "0", ", ".join(r["other_kind"]) or "0",
-                      ", ".join(r["not_judged"]) or "0", f"{r['seconds']:.0f}"))
+        lines.append((r["model"], planted, found, conf, ious, str(len(r["false_confirmed"])),
+                      str(len(r["cleared"])), str(len(r["other_kind"])), str(len(r["not_judged"])),
+                      f"{r['seconds']:.0f}"))
     widths = [max(len(str(x[i])) for x in [head, *lines]) for i in range(len(head))]
     fmt = " | ".join(f"{{:<{w}}}" for w in widths)
-    out = [fmt.format(*head), "-+-".join("-" * w for w in widths), *(fmt.format(*x) for x in lines)]
+    out = [fmt.format(*head), "-+-".join("-" * w for w in widths), *(fmt.format(*x) for x in lines), "",
+           "findings behind the counts (class:kind[:status]):"]
+    for r in rows:
+        parts = [f"{label} {', '.join(r[key])}" for label, key in
+                 (("false confirmed:", "false_confirmed"), ("cleared:", "cleared"),
+                  ("other kind:", "other_kind"), ("still suspect:", "suspect"), ("not judged:", "not_judged"))
+                 if r[key]]
+        on_planted = "; ".join(f"{p['class']}: {', '.join(p['findings_on_class']) or 'nothing'}"
+                               for p in r["planted"])
+        if on_planted:
+            parts.insert(0, f"on planted classes: {on_planted}")
+        out.append(f"  {r['model']}: " + ("; ".join(parts) if parts else "no findings"))
     t = tot
     ious = [v for v in t["box_iou"]]
     iou_txt = ", ".join("none" if v is None else f"{v:.2f}" for v in ious) or "-"
