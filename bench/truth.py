@@ -16,7 +16,9 @@ settings, and its findings are scored against what was planted:
 * other kind: a finding of a kind not accepted on a planted class (counted, not scored);
 * cleared: not-confirmed findings;
 * box IoU: the fixed-position finding's region against the planted mark's box;
-* not judged: classes with fewer correct images than ``min_correct_images``.
+* not judged: classes with fewer correct images than ``min_correct_images``;
+* for each falsely confirmed region finding, the mean share of its tested boxes that lies
+  on the source image's object (near 1: the model reads a part of the object itself).
 
 No torch; onnxruntime through the library. Timing is wall-clock of the audit call.
 """
@@ -101,6 +103,26 @@ def score_findings(entry: dict, findings: list[dict], classes: list[dict], min_c
     }
 
 
+def on_object_share(finding: dict, masks_root: Path) -> float | None:
+    """Mean share of a finding's tested boxes (``evidence.test.examples``) that lies on the
+    source image's object mask: near 1 means the region is a part of the object itself."""
+    import numpy as np
+    from PIL import Image
+
+    shares = []
+    for ex in ((finding.get("evidence") or {}).get("test") or {}).get("examples", []):
+        box, src = ex.get("box"), ex.get("source_path")
+        path = masks_root / src if src else None
+        if box is None or path is None or not path.exists():
+            continue
+        m = np.asarray(Image.open(path)) > 127
+        h, w = m.shape
+        x0, y0 = int(np.floor(box[0] * w)), int(np.floor(box[1] * h))
+        x1, y1 = max(x0 + 1, int(np.ceil(box[2] * w))), max(y0 + 1, int(np.ceil(box[3] * h)))
+        shares.append(float(m[y0:y1, x0:x1].mean()))
+    return round(float(np.mean(shares)), 3) if shares else None
+
+
 def score_model(name: str, entry: dict, workdir: Path) -> dict:
     """Regenerate the audit set of ``name`` under ``workdir``, audit it, score it."""
     spec = spec_of(name)
@@ -114,6 +136,11 @@ def score_model(name: str, entry: dict, workdir: Path) -> dict:
     findings = [f.to_dict() for f in result.findings]
     classes = [{"name": c.name, "correct": c.correct, "images": c.images} for c in result.classes]
     row = score_findings(entry, findings, classes, result.settings.thresholds.min_correct_images)
+    # where the falsely confirmed regions lie: on the object (a part of it) or off it
+    row["false_confirmed_on_object"] = {
+        f"{f['class']}:{f['kind']}": on_object_share(f, written["masks"]) for f in findings
+        if f["status"] == "confirmed" and f"{f['class']}:{f['kind']}" in row["false_confirmed"]
+        and f["kind"] != "background"}
     row.update(model=name, seconds=round(seconds, 1), set_matches=written["sha256"] == entry["audit_set"]["sha256"],
                clean_classes=[k for k, v in entry["classes"].items() if v != "planted"])
     return row
@@ -167,6 +194,9 @@ def table(rows: list[dict], tot: dict) -> str:
                                for p in r["planted"])
         if on_planted:
             parts.insert(0, f"on planted classes: {on_planted}")
+        if r.get("false_confirmed_on_object"):
+            parts.append("tested regions on the object: " + ", ".join(
+                f"{k} {'-' if v is None else f'{v:.0%}'}" for k, v in r["false_confirmed_on_object"].items()))
         out.append(f"  {r['model']}: " + ("; ".join(parts) if parts else "no findings"))
     t = tot
     ious = [v for v in t["box_iou"]]

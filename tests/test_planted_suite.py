@@ -179,3 +179,17 @@ def test_scoreboard_floors(tmp_path):
     assert sum(len(r["false_confirmed"]) for r in rows) == 0
     assert all(p["box_iou"] is not None and p["box_iou"] >= 0.7
                for p in planted if p["planted"] == "fixed-mark")
+
+
+def test_on_object_share_of_tested_boxes(tmp_path):
+    from PIL import Image
+    mask = np.zeros((20, 20), np.uint8)
+    mask[:, :10] = 255                      # the left half is the object
+    (tmp_path / "a").mkdir()
+    Image.fromarray(mask).save(tmp_path / "a" / "a_00.png")
+    finding = {"evidence": {"test": {"examples": [
+        {"box": [0.0, 0.0, 0.25, 0.5], "source_path": "a/a_00.png"},   # wholly on the object: 1
+        {"box": [0.0, 0.0, 1.0, 1.0], "source_path": "a/a_00.png"},    # half on it: 0.5
+        {"box": None, "source_path": "a/a_00.png"}]}}}                 # no box: left out
+    assert board.on_object_share(finding, tmp_path) == pytest.approx(0.75)
+    assert board.on_object_share({"evidence": {}}, tmp_path) is None
