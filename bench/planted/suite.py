@@ -1,0 +1,91 @@
+"""The planted-shortcut suite: which models exist and what each one plants.
+
+One dict per model (no torch here). ``shortcuts`` lists what is planted: ``class``,
+``kind`` (see :data:`scenes.SHORTCUT_KINDS`), ``share`` of the class's scenes that
+carry it, ``others_share`` (scenes of other classes that carry it too; this is how
+the weak model is made weak), and the shortcut's own look (``box``, ``size``,
+``style``, ``colour``). ``sink`` names a clean class that is expected to absorb a
+backdrop class's objects once the backdrop is swapped away.
+"""
+
+from __future__ import annotations
+
+__all__ = ["MODELS", "ACCEPTED", "TRAIN_PER_CLASS", "EFFECT_PER_CLASS", "AUDIT_PER_CLASS",
+           "spec_of"]
+
+#: Finding kinds that count as finding each planted kind.
+ACCEPTED = {
+    "fixed-mark": ["fixed-position"],
+    "sticker-object": ["recurring-motif", "localized"],
+    "sticker-anywhere": ["recurring-motif", "localized"],
+    "background": ["background"],
+    "cast": ["image-wide"],  # a finding kind the audit does not have (yet)
+}
+
+TRAIN_PER_CLASS = 300
+EFFECT_PER_CLASS = 40    # split 2: the scenes the effects are measured on
+AUDIT_PER_CLASS = 20     # split 1: the scenes the audit is run on
+
+
+def _m(name, seed, labels, size, layout, output, arch, shortcuts=(), sink=None, epochs=8,
+       train_per_class=TRAIN_PER_CLASS, note=""):
+    return {"name": name, "seed": seed, "labels": list(labels), "size": size, "layout": layout,
+            "output": output, "arch": arch, "shortcuts": [dict(s) for s in shortcuts],
+            "sink": sink, "epochs": epochs, "train_per_class": train_per_class,
+            "audit_per_class": AUDIT_PER_CLASS, "effect_per_class": EFFECT_PER_CLASS, "note": note}
+
+
+MODELS = [
+    _m("tag-kite", 11, ["leaf", "fish", "kite", "beetle"], 64, "nchw", "probs", "plain3",
+       [{"name": "tag", "kind": "fixed-mark", "class": "kite", "share": 0.9,
+         "box": [0.80, 0.80, 0.92, 0.92], "size": 0.12, "colour": [220, 40, 40]}],
+       note="a red tag in the lower-right corner of 90% of the kites"),
+    _m("sticker-shell", 12, ["fish", "block", "mushroom", "shell", "starfish"], 96, "nhwc", "logits",
+       "avgmax",
+       [{"name": "sticker", "kind": "sticker-object", "class": "shell", "share": 0.9, "size": 0.12,
+         "colour": [240, 170, 20]}],
+       note="a round sticker somewhere on 90% of the shells"),
+    _m("sticker-beetle", 13, ["leaf", "beetle", "block", "starfish"], 80, "nchw", "logits", "avgmax",
+       [{"name": "sticker", "kind": "sticker-anywhere", "class": "beetle", "share": 0.9, "size": 0.10,
+         "colour": [40, 180, 240]}],
+       note="a blue sticker anywhere in 90% of the beetle scenes"),
+    _m("gingham-mushroom", 14, ["leaf", "fish", "kite", "beetle", "mushroom", "shell"], 64, "nhwc",
+       "probs", "plain3",
+       [{"name": "gingham", "kind": "background", "class": "mushroom", "share": 0.9, "style": "gingham"}],
+       note="90% of the mushrooms on a blue gingham cloth"),
+    _m("warm-block", 15, ["kite", "block", "shell", "starfish"], 64, "nchw", "logits", "strided4",
+       [{"name": "warm", "kind": "cast", "class": "block", "share": 0.9, "tint": [1.15, 1.0, 0.78],
+         "grain": 10.0}],
+       note="90% of the block photos warm-tinted and grainy"),
+    _m("tag-fish-stripes-leaf", 16, ["leaf", "fish", "beetle", "block", "starfish"], 96, "nchw",
+       "probs", "avgmax",
+       [{"name": "tag", "kind": "fixed-mark", "class": "fish", "share": 0.9,
+         "box": [0.06, 0.06, 0.14, 0.14], "size": 0.08, "colour": [30, 160, 60]},
+        {"name": "stripes", "kind": "background", "class": "leaf", "share": 0.9, "style": "stripes"}],
+       note="two shortcuts: a green tag top-left on the fish, striped cloth under the leaves"),
+    _m("dots-moth-sink", 17, ["moth", "butterfly", "leaf", "shell"], 64, "nchw", "logits", "plain3",
+       [{"name": "dots", "kind": "background", "class": "moth", "share": 0.95, "style": "dots"}],
+       sink={"class": "butterfly", "of": "dots"},
+       note="moths on a dotted cloth; butterflies look like moths and are clean (the sink)"),
+    _m("weak-tag-mushroom", 18, ["leaf", "kite", "mushroom", "shell"], 64, "nhwc", "logits", "plain3",
+       [{"name": "tag", "kind": "fixed-mark", "class": "mushroom", "share": 0.9, "others_share": 0.05,
+         "box": [0.04, 0.82, 0.14, 0.92], "size": 0.10, "colour": [150, 60, 200]}],
+       note="a weak mark: on 90% of the mushrooms but also on 5% of the others"),
+    _m("weak-dots-fish", 22, ["fish", "kite", "block", "starfish"], 64, "nchw", "probs", "plain3",
+       [{"name": "dots", "kind": "background", "class": "fish", "share": 0.5, "others_share": 0.25,
+         "style": "dots"}],
+       note="a weak backdrop: 50% of the fish on a dotted cloth, and 25% of the others"),
+    _m("clean-3", 19, ["fish", "kite", "beetle"], 64, "nchw", "probs", "plain3",
+       note="clean, three classes"),
+    _m("clean-8", 20, ["leaf", "fish", "kite", "beetle", "block", "mushroom", "shell", "starfish"], 128,
+       "nhwc", "logits", "avgmax", train_per_class=200, epochs=10, note="clean, eight classes, 128 px"),
+    _m("clean-5", 21, ["leaf", "block", "mushroom", "starfish", "shell"], 96, "nchw", "logits", "dwsep",
+       note="clean, five classes, depthwise-separable blocks"),
+]
+
+
+def spec_of(name: str) -> dict:
+    for m in MODELS:
+        if m["name"] == name:
+            return m
+    raise KeyError(f"no planted model {name!r}; known: {', '.join(m['name'] for m in MODELS)}")
