@@ -53,6 +53,9 @@ class ImageSummary:
     survives_object_erased: bool | None = None
     survives_background_erased: bool | None = None
     object_erased_prediction: int | None = None
+    decisive_on_object: float | None = None   # share of the decisive pixels on the object
+    decisive_object_cover: float | None = None  # share of the object the decisive pixels cover
+    peak_on_object: float | None = None       # share of the peak box on the object
 
     @property
     def correct(self) -> bool:
@@ -98,6 +101,8 @@ class ClassSummary:
     metrics: dict = field(default_factory=dict)
     place_box: list[float] | None = None      # where decisive boxes agree most
     not_judged: tuple[str, ...] = ()          # why rules could not judge it (findings.not_judged)
+    peak_place_box: list[float] | None = None  # where the heat's peaks agree most
+    notes: tuple[str, ...] = ()               # what the rules saw that is not a shortcut finding
 
 
 class ClassAccumulator:
@@ -115,6 +120,10 @@ class ClassAccumulator:
         if self.counts[label] == 0:
             return None
         return (self.sums[label] / self.counts[label]).astype(np.float32)
+
+
+def _overlap(a: list[float], b: list[float]) -> bool:
+    return a[0] < b[2] and b[0] < a[2] and a[1] < b[3] and b[1] < a[3]
 
 
 def _median(values: list[float]) -> float | None:
@@ -169,6 +178,22 @@ def summarise_classes(images: list[ImageSummary], labels: tuple[str, ...], *,
                 place_box = box_of(pm >= max(1.0, 0.5 * peak))
             else:
                 agreement = 0.0
+        # The same over the heat's peaks of every correct image: a mark that suffices for
+        # the class without being needed (the object alone is enough too) moves no
+        # decision when hidden, but it still draws the heat to one place.
+        peaks = [im.peak_box for im in right
+                 if im.peak_box is not None and _box_area(im.peak_box) <= BOX_MAX_AREA]
+        peak_agreement, peak_place, peak_on = None, None, None
+        if right:
+            peak_agreement = 0.0
+            if peaks:
+                pm = place_map(peaks, shape)
+                top = pm.max()
+                peak_agreement = float(top / len(right))
+                peak_place = box_of(pm >= max(1.0, 0.5 * top))
+                at_peak = [im for im in right if im.peak_box is not None
+                           and _overlap(im.peak_box, peak_place) and im.peak_on_object is not None]
+                peak_on = _median([im.peak_on_object for im in at_peak])
         masked = [im for im in members if im.background_share is not None]
         survival = _rate([bool(im.survives_object_erased) for im in right
                           if im.survives_object_erased is not None])
@@ -197,12 +222,18 @@ def summarise_classes(images: list[ImageSummary], labels: tuple[str, ...], *,
             "masked_images": len(masked),
             "estimated_masks": sum(1 for im in masked if im.mask_source == "estimated"),
             "correct_images": len(right),
+            "peak_agreement": peak_agreement,
+            "peak_on_object": peak_on,
+            "decisive_on_object": _median([im.decisive_on_object for im in right
+                                           if im.small and im.decisive_on_object is not None]),
+            "decisive_object_cover": _median([im.decisive_object_cover for im in right
+                                              if im.small and im.decisive_object_cover is not None]),
         }
         out.append(ClassSummary(
             name=name, index=index, images=len(members), correct=len(right),
             accuracy=len(right) / len(members),
             mean_confidence=float(np.mean([im.confidence for im in members])),
             mean_heatmap=accumulator.mean(index) if accumulator is not None else None,
-            metrics=metrics, place_box=place_box,
+            metrics=metrics, place_box=place_box, peak_place_box=peak_place,
         ))
     return out

@@ -114,9 +114,79 @@ def add_motif_findings(findings: list[Finding], classes: list[ClassSummary],
             out[out.index(local)] = finding
         else:
             out.append(finding)
+    out = _small_things_in_backgrounds(out, classes, images, entries, classifier, th=th, side=side,
+                                       max_examples=max_examples)
     out.sort(key=lambda f: (f.class_index, ("fixed-position", "localized", "recurring-motif",
                                             "background").index(f.kind)))
     return out
+
+
+def _small_things_in_backgrounds(findings: list[Finding], classes: list[ClassSummary],
+                                 images: list[ImageSummary], entries: dict[str, ImageEntry],
+                                 classifier, *, th: Thresholds, side: int,
+                                 max_examples: int) -> list[Finding]:
+    """Background findings that may be a small recurring thing, not the backdrop.
+
+    A sticker that lands anywhere in the picture puts the class's heat outside the
+    object, so the background rule flags it. When the heat's peaks lie off the object
+    (median share on it below ``object_share``) and the crops around them look alike
+    (a motif covering ``motif_coverage``), the motif goes into the finding's evidence as
+    ``motif_candidate``. A patterned backdrop looks alike everywhere too, so the tests
+    decide: :func:`confirm_findings` runs the motif's transplant beside the background
+    swap, and the finding becomes the recurring motif only when that transplant confirms.
+    """
+    by_index = {c.index: c for c in classes}
+    out = list(findings)
+    for f in findings:
+        if f.kind != "background":
+            continue
+        cls = by_index[f.class_index]
+        peak_on = cls.metrics.get("peak_on_object")
+        if peak_on is None or peak_on >= th.object_share:
+            continue
+        mine = sorted([im for im in images if im.label == cls.index and im.correct
+                       and im.peak_box is not None and im.peak_on_object is not None
+                       and im.peak_on_object < th.object_share], key=lambda im: im.path)
+        if len(mine) < 3:
+            continue
+        recs = _records([entries[im.path] for im in mine], classifier)
+        crops, paths = [], []
+        for im in mine:
+            rec = recs.get(im.path)
+            if rec is not None:
+                crops.append(cut_crop(rec.pixels, im.peak_box, index=len(crops), min_side=side))
+                paths.append(im.path)
+        motifs = find_motifs(crops, n_images=cls.correct, min_coverage=th.motif_coverage) if crops else []
+        if not motifs:
+            continue
+        motif = max(motifs, key=lambda m: (m.coverage, -m.cohesion))
+        member_paths = [paths[i] for i in motif.members]
+        evidence = {"statistic": "motif_coverage", "value": motif.coverage,
+                    "threshold": th.motif_coverage, "spread": motif.spread,
+                    "cohesion": motif.cohesion, "medoid": paths[motif.medoid],
+                    "medoid_box": crops[motif.medoid].box, "member_paths": member_paths,
+                    "member_boxes": [list(b) for b in motif.boxes], "images": cls.correct,
+                    "found_in": "heat peaks off the object",
+                    "examples": member_paths[:max_examples]}
+        out[out.index(f)] = dataclasses.replace(f, evidence=dict(f.evidence, motif_candidate=evidence))
+    return out
+
+
+def _with_motif_candidates(findings: list[Finding]) -> tuple[list[Finding], set[int]]:
+    """The findings with, after each background finding that has a motif candidate, that
+    motif as a finding of its own; and the positions of those added motifs."""
+    out, added = [], set()
+    for f in findings:
+        out.append(f)
+        cand = f.evidence.get("motif_candidate") if f.kind == "background" else None
+        if cand:
+            ev = {k: v for k, v in cand.items() if k != "examples"}
+            ev["background"] = {k: v for k, v in f.evidence.items() if k != "motif_candidate"}
+            added.add(len(out))
+            out.append(Finding(id=f.id, class_name=f.class_name, class_index=f.class_index,
+                               kind="recurring-motif", region=None, evidence=ev,
+                               examples=tuple(cand.get("examples", ()))))
+    return out, added
 
 
 def confirm_findings(findings: list[Finding], images: list[ImageSummary],
@@ -136,6 +206,7 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
 
     if not findings:
         return findings
+    findings, candidates = _with_motif_candidates(findings)
     rng = np.random.default_rng(seed)
     by_class: dict[int, list[ImageSummary]] = {}
     for im in sorted(images, key=lambda im: im.path):
@@ -184,6 +255,7 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
                     own=own_m, others=oth_m, suspect=f.class_index, trials=budget, seed=job_seed,
                     own_scores=known(test_sources[k]), others_scores=known(test_targets[k]))))
             continue
+        control_masks = None
         if f.kind == "fixed-position" and f.region is not None:
             tight = tighten_region(f.region, [r.pixels for _, r in own_r], [r.pixels for _, r in oth_r])
             if tight is not None and tight != f.region:
@@ -200,6 +272,7 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
             if medoid is None:
                 continue
             sources = [(medoid.pixels, f.evidence["medoid_box"])]
+            control_masks = [_mask_of(medoid)]
             test_sources[k] = [f.evidence["medoid"]]
             boxed = [(im, r) for im, r in own_r if im.decisive_box is not None]
             boxes = [im.decisive_box for im, _ in boxed]
@@ -210,12 +283,14 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
             if not boxed:
                 continue
             sources = [(r.pixels, im.decisive_box) for im, r in boxed]
+            control_masks = [_mask_of(r) for _, r in boxed]
             test_sources[k] = [im.path for im, _ in boxed]
             boxes = [im.decisive_box for im, _ in boxed]
             own_r = boxed
             placement = "on-object"
         jobs.append(((k, "test"), transplant_job(sources=sources, targets=targets, suspect=f.class_index,
                                                  placement=placement, trials=budget, seed=job_seed,
+                                                 control_masks=control_masks,
                                                  target_scores=known(test_targets[k]))))
         if own_r:
             jobs.append(((k, "removal"), removal_job(images=[(r.pixels, im.label) for im, r in own_r],
@@ -255,4 +330,13 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
         d["images"] = {"own": [im.path for im in own_s], "others": [im.path for im in others_s]}
         out.append(dataclasses.replace(f, status=status, evidence=dict(
             f.evidence, test=d, p_value=test.p_value)))
-    return out
+    # A background finding and its motif candidate: the motif stands in for it only when
+    # its own transplant confirms (a small recurring thing, not the backdrop).
+    kept = []
+    for i, f in enumerate(out):
+        if i in candidates:
+            if f.status == "confirmed":
+                kept[-1] = f
+            continue
+        kept.append(f)
+    return kept

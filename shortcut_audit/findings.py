@@ -31,6 +31,7 @@ __all__ = [
     "FINDING_KINDS",
     "judge",
     "not_judged",
+    "object_part_note",
 ]
 
 FINDING_KINDS = ("localized", "fixed-position", "recurring-motif", "background")
@@ -47,6 +48,8 @@ THRESHOLD_TABLE: tuple[tuple[str, float, str], ...] = (
      "share of a class's small decisive regions that cover one common place"),
     ("fixed_margin", 0.25,
      "how far that agreement must exceed the median of the other classes"),
+    ("object_share", 0.50,
+     "share of a region on the object from which it counts as a part of the object: a small decisive region mostly on the object is noted, not flagged; a fixed place must lie mostly off it"),
     ("background_share", 0.50,
      "median share of a class's positive heat that lies outside the object"),
     ("background_margin", 0.10,
@@ -82,6 +85,7 @@ class Thresholds:
     localized_margin: float = 0.25
     fixed_agreement: float = 0.50
     fixed_margin: float = 0.25
+    object_share: float = 0.50
     background_share: float = 0.50
     background_margin: float = 0.10
     background_reliance: float = 0.40
@@ -209,9 +213,19 @@ def judge(classes: list[ClassSummary], images: list[ImageSummary], *,
         agreement = m["box_agreement"] or 0.0
         agree_others = _others_median(classes, cls, "box_agreement")
         hinges = small_rate >= th.localized_rate
-        localized = hinges and small_rate - small_others >= th.localized_margin
+        localized = _localized(cls, classes, th) and object_part_note(cls, classes, th) is None
         fixed = (hinges and agreement >= th.fixed_agreement
                  and agreement - agree_others >= th.fixed_margin)
+        # A mark that suffices without being needed moves no decision when hidden, but
+        # still draws the heat's peak to one place, off the object. Only with masks
+        # (given or estimated): a catalogue's objects often sit at one place too.
+        peak_agree = m.get("peak_agreement") or 0.0
+        peak_others = _others_median(classes, cls, "peak_agreement")
+        peak_on = m.get("peak_on_object")
+        by_peaks = (not fixed and cls.peak_place_box is not None
+                    and peak_agree >= th.fixed_agreement
+                    and peak_agree - peak_others >= th.fixed_margin
+                    and peak_on is not None and peak_on < th.object_share)
         if fixed:
             members = [im for im in mine if im.small and _overlaps(im.decisive_box, cls.place_box)]
             members.sort(key=lambda im: (im.decisive_area, im.path))
@@ -223,6 +237,19 @@ def judge(classes: list[ClassSummary], images: list[ImageSummary], *,
                                    small_area_threshold=th.localized_rate,
                                    images=len(mine), agreeing_images=len(members),
                                    small_images=sum(1 for im in mine if im.small)),
+                examples=tuple(im.path for im in members[:max_examples])))
+        elif by_peaks:
+            fixed = True
+            members = [im for im in mine if _overlaps(im.peak_box, cls.peak_place_box)]
+            members.sort(key=lambda im: (-(im.label_score or 0.0), im.path))
+            found.append(Finding(
+                id="", class_name=cls.name, class_index=cls.index, kind="fixed-position",
+                region=cls.peak_place_box,
+                evidence=_evidence("peak_agreement", peak_agree, th.fixed_agreement, peak_others,
+                                   th.fixed_margin, peak_on_object=peak_on,
+                                   object_share_threshold=th.object_share,
+                                   small_area_rate=small_rate, images=len(mine),
+                                   agreeing_images=len(members)),
                 examples=tuple(im.path for im in members[:max_examples])))
         elif localized:
             members = sorted([im for im in mine if im.small], key=lambda im: (im.decisive_area, im.path))
@@ -297,3 +324,37 @@ def not_judged(cls: ClassSummary, thresholds: Thresholds | None = None) -> tuple
     if not cls.metrics.get("masked_images"):
         return ("background not judged: no object mask given or estimated (pass --masks)",)
     return ()
+
+
+def _localized(cls: ClassSummary, classes: list[ClassSummary], th: Thresholds) -> bool:
+    small_rate = cls.metrics.get("small_area_rate") or 0.0
+    small_others = _others_median(classes, cls, "small_area_rate")
+    return small_rate >= th.localized_rate and small_rate - small_others >= th.localized_margin
+
+
+def object_part_note(cls: ClassSummary, classes: list[ClassSummary],
+                     thresholds: Thresholds | None = None) -> str | None:
+    """A note, not a finding, for a class whose decisions hinge on a small part of the
+    object itself (None when that is not the case).
+
+    The localized rule sees that hiding a small region moves the class's decisions.
+    When the object masks show that region to be on the object (median share of the
+    decisive pixels on it at least ``object_share``), the audit cannot tell a part of the
+    object (a fin, a handle, a small object as a whole) from a thing stuck on it (a
+    price sticker): pasted onto other images, both pull them to the class, and on the
+    planted-shortcut suite small clean objects' own parts were confirmed that way. So
+    the class gets this note, not a shortcut finding. A thing that recurs alike on the
+    object is still found as a recurring motif; a sticker that does not is missed,
+    and the note says where to look.
+    """
+    th = thresholds or Thresholds()
+    if cls.correct < th.min_correct_images or not _localized(cls, classes, th):
+        return None
+    on = cls.metrics.get("decisive_on_object")
+    if on is None or on < th.object_share:
+        return None
+    rate = cls.metrics.get("small_area_rate") or 0.0
+    return (f"decisions hinge on a small part of the object itself: hiding at most 5% of the "
+            f"image moves {rate:.0%} of its correct images, and {on:.0%} of those pixels (median) "
+            f"lie on the object. A narrow reading of the object, not a shortcut by this audit's "
+            f"evidence; worth a look if that part is not what should define the class.")

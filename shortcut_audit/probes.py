@@ -365,6 +365,7 @@ def transplant_job(*, sources: Sequence[tuple[np.ndarray, Sequence[float]]],
                    targets: Sequence[tuple[np.ndarray, np.ndarray | None, int]],
                    suspect: int, placement: str,
                    control_boxes: Sequence[Sequence[float]] | None = None,
+                   control_masks: Sequence[np.ndarray | None] | None = None,
                    trials: int = 40, seed: int = 0,
                    target_scores: Sequence[np.ndarray] | None = None) -> Job:
     """A job that pastes the suspect region onto other classes' images.
@@ -389,6 +390,13 @@ def transplant_job(*, sources: Sequence[tuple[np.ndarray, Sequence[float]]],
         One per source: the centre of each gives the control patch of that source (the
         patch keeps the region's size). By default each trial draws a place clear of
         the region (grown by half the patch), from ``seed``.
+    control_masks : sequence of (H, W) bool arrays or None, optional
+        One per source: the control patch is drawn with its centre on this mask (the
+        source's object), still clear of the region; None, or no such place, draws
+        anywhere. With the object's mask the control asks whether the region carries
+        the class *more than another piece of the same object* does: a shortcut
+        (a sticker on the object) does, a part the model rightly reads the object by
+        (a handle, a fin) does not much more than the rest of the object.
     trials : int
     seed : int
     target_scores : sequence of (K,) arrays, optional
@@ -432,6 +440,9 @@ def transplant_job(*, sources: Sequence[tuple[np.ndarray, Sequence[float]]],
     for i, t in enumerate(targets):
         _label(t[2], f"target {i}'s label")
     known = _known(target_scores, len(targets), "target_scores")
+    if control_masks is not None and len(control_masks) != len(sources):
+        raise UsageError(f"control_masks must give one mask (or None) per source ({len(sources)}); "
+                         f"got {len(control_masks)}.")
     if control_boxes is not None and len(control_boxes) != len(sources):
         raise UsageError(f"control_boxes must give one box per source ({len(sources)}); "
                          f"got {len(control_boxes)}.")
@@ -455,6 +466,12 @@ def transplant_job(*, sources: Sequence[tuple[np.ndarray, Sequence[float]]],
         else:
             if s not in far:
                 far[s] = _far_positions(regions[s], ph, pw, h, w)
+                cm = None if control_masks is None else control_masks[s]
+                if cm is not None:
+                    cm = _mask(cm, (h, w), f"source {s}'s control mask")
+                    on = cm[far[s][:, 0] + ph // 2, far[s][:, 1] + pw // 2]
+                    if on.any():
+                        far[s] = far[s][on]
             ctrl = tuple(int(v) for v in far[s][int(rng.integers(len(far[s])))])
         plan.append((s, t, place, ctrl))
     return _transplant(src_px, tgt_px, regions, plan, suspect, placement, h, w, trials, known)

@@ -25,13 +25,13 @@ __all__ = ["contrast_map", "tighten_region", "CONTRAST_KEEP", "MIN_CONTRAST", "C
 
 #: Pixels whose contrast is at least this share of the strongest one are the mark's.
 CONTRAST_KEEP = 0.5
-#: Below this contrast (difference of means over the summed spreads) nothing at the
-#: place sets the class apart from the others, and the heat's box is kept.
-MIN_CONTRAST = 1.5
-#: The strongest contrast inside the box must also be this many times the 99th
-#: percentile of the contrast elsewhere: a class that differs everywhere (a colour
-#: cast, another object) has no mark to tighten to.
-CONTRAST_OVER_ELSEWHERE = 2.0
+#: The strongest contrast inside the box, averaged over 3 x 3 pixels (a mark spans
+#: several pixels, chance contrasts do not), must be this many times the 99th
+#: percentile of the same elsewhere: a class that differs everywhere (a colour cast,
+#: another object) or nowhere has no mark to tighten to.
+CONTRAST_OVER_ELSEWHERE = 2.5
+#: And at least this much in absolute terms (difference of means over summed spreads).
+MIN_CONTRAST = 0.5
 
 
 def contrast_map(own: Sequence[np.ndarray], others: Sequence[np.ndarray]) -> np.ndarray:
@@ -76,26 +76,27 @@ def tighten_region(region: Sequence[float], own: Sequence[np.ndarray], others: S
     Returns
     -------
     list of 4 floats or None
-        None when nothing inside the area contrasts by :data:`MIN_CONTRAST` or more, or
-        by :data:`CONTRAST_OVER_ELSEWHERE` times the contrast elsewhere: keep the loose
-        box then.
+        None when nothing inside the area contrasts by :data:`MIN_CONTRAST` and by
+        :data:`CONTRAST_OVER_ELSEWHERE` times the contrast elsewhere (3 x 3 means): keep
+        the loose box then.
     """
     if len(own) < 2 or len(others) < 2:
         return None
     cmap = contrast_map(own, others)
+    smooth = ndimage.uniform_filter(cmap, 3)
     h, w = cmap.shape
     x0, y0, x1, y1 = region
     r0, r1 = max(0, int(np.floor((y0 - pad) * h))), min(h, int(np.ceil((y1 + pad) * h)))
     c0, c1 = max(0, int(np.floor((x0 - pad) * w))), min(w, int(np.ceil((x1 + pad) * w)))
     inside = np.zeros((h, w), bool)
     inside[r0:r1, c0:c1] = True
-    values = np.where(inside, cmap, 0.0)
-    peak = float(values.max())
-    elsewhere = cmap[~inside]
-    floor = CONTRAST_OVER_ELSEWHERE * float(np.percentile(elsewhere, 99)) if elsewhere.size else 0.0
-    if peak < max(MIN_CONTRAST, floor):
+    if inside.all() or not inside.any():
         return None
-    keep = values >= CONTRAST_KEEP * peak
+    peak = float(smooth[inside].max())
+    if peak < max(MIN_CONTRAST, CONTRAST_OVER_ELSEWHERE * float(np.percentile(smooth[~inside], 99))):
+        return None
+    values = np.where(inside, cmap, 0.0)
+    keep = values >= CONTRAST_KEEP * float(values.max())
     labels, _ = ndimage.label(keep)
     at = np.unravel_index(int(np.argmax(values)), values.shape)
     return box_of(labels == labels[at])

@@ -28,7 +28,7 @@ from .classes import ClassAccumulator, ClassSummary, ImageSummary, summarise_cla
 from .dataset import ImageEntry, ImageRecord, Skip, class_names, iter_records, list_images
 from .engine import PassEngine, make_scorer
 from .errors import AuditError, DataError, ImageSkip, UsageError
-from .findings import Finding, Thresholds, judge, not_judged
+from .findings import Finding, Thresholds, judge, not_judged, object_part_note
 from .model import ModelConfig, OnnxClassifier
 from .occlusion import Fill, GridPlan, Plan, RandomPatchPlan, SmoothMaskPlan
 from .sensitivity import ImageStats, estimate_object_mask, image_job
@@ -106,7 +106,8 @@ class AuditResult:
             "classes": [{"name": c.name, "images": c.images, "correct": c.correct,
                          "accuracy": c.accuracy, "mean_confidence": c.mean_confidence,
                          "place_box": c.place_box, "metrics": c.metrics,
-                         "not_judged": list(c.not_judged)} for c in self.classes],
+                         "not_judged": list(c.not_judged), "notes": list(c.notes),
+                         "peak_place_box": c.peak_place_box} for c in self.classes],
             "findings": [f.to_dict() for f in self.findings],
             "images": [_image_dict(im, labels) for im in self.images],
             "skipped": [{"path": s.path, "reason": s.reason} for s in self.skipped],
@@ -179,6 +180,8 @@ def _record_from_stats(path: str, label: int, stats: ImageStats, probs: np.ndarr
         "survives_object_erased": stats.survives_object_erased,
         "survives_background_erased": stats.survives_background_erased,
         "object_erased_prediction": stats.object_erased_prediction,
+        "decisive_on_object": stats.decisive_on_object, "peak_on_object": stats.peak_on_object,
+        "decisive_object_cover": stats.decisive_object_cover,
         "passes": stats.passes,
     }
 
@@ -335,7 +338,9 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
             crops[e.path] = arrays["crop"]
     skipped.sort(key=lambda s: s.path)
     classes = summarise_classes(summaries, classifier.labels, accumulator=acc, shape=shape)
-    classes = [dataclasses.replace(c, not_judged=not_judged(c, settings.thresholds)) for c in classes]
+    classes = [dataclasses.replace(c, not_judged=not_judged(c, settings.thresholds),
+                                   notes=tuple(n for n in [object_part_note(c, classes, settings.thresholds)] if n))
+               for c in classes]
     findings = judge(classes, summaries, thresholds=settings.thresholds)
     by_path = {e.path: e for e in usable}
     findings = add_motif_findings(findings, classes, summaries, by_path, classifier,

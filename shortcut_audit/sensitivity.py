@@ -551,6 +551,9 @@ class ImageStats:
     survives_object_erased: bool | None = None
     survives_background_erased: bool | None = None
     object_erased_prediction: int | None = None
+    decisive_on_object: float | None = None   # share of the decisive pixels on the object
+    decisive_object_cover: float | None = None  # share of the object the decisive pixels cover
+    peak_on_object: float | None = None       # share of the peak box on the object
     passes: int = 0
     extra: dict = field(default_factory=dict)
 
@@ -637,7 +640,7 @@ def image_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None =
     ladder = rows[:n_ladder]
     moved = np.argmax(ladder, axis=1) != t
     decisive_area = decisive_score = None
-    decisive_box = None
+    decisive_box = decisive_pixels = None
     if moved.any():
         first = int(np.argmax(moved))
         hi = DECISIVE_LADDER[first]
@@ -662,6 +665,7 @@ def image_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None =
         decisive_area = float(hi)
         decisive_score = hi_score
         decisive_box = box_of(hidden(hi))
+        decisive_pixels = hidden(hi)
     deletion = insertion = []
     del_area = ins_area = float("nan")
     if curves:
@@ -671,8 +675,17 @@ def image_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None =
         del_area = curve_area(curve_x, np.asarray(deletion))
         ins_area = curve_area(curve_x, np.asarray(insertion))
     bg_share = survives_obj = survives_bg = erased_pred = None
+    on_object = peak_on = cover = None
+    the_peak = peak_box(hm.values)
     if mask is not None:
         bg_share = background_share(hm.values, mask)
+        if decisive_pixels is not None and decisive_pixels.any():
+            on_object = float((decisive_pixels & mask).sum() / decisive_pixels.sum())
+            cover = float((decisive_pixels & mask).sum() / mask.sum()) if mask.any() else None
+        if the_peak is not None:
+            r0, r1 = int(np.floor(the_peak[1] * h)), int(np.ceil(the_peak[3] * h))
+            c0, c1 = int(np.floor(the_peak[0] * w)), int(np.ceil(the_peak[2] * w))
+            peak_on = float(mask[r0:r1, c0:c1].mean()) if r1 > r0 and c1 > c0 else None
         if erase_batch:
             tail = scores[-2:]
             erased_pred = int(np.argmax(tail[0]))
@@ -682,10 +695,11 @@ def image_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None =
         target=t, predicted=int(np.argmax(base)), base_scores=base, heatmap=hm,
         concentration=concentration(hm.values), gini=gini(hm.values),
         decisive_area=decisive_area, decisive_box=decisive_box, decisive_score=decisive_score,
-        peak_box=peak_box(hm.values), deletion=deletion, insertion=insertion,
+        peak_box=the_peak, deletion=deletion, insertion=insertion,
         deletion_area=del_area, insertion_area=ins_area, background_share=bg_share,
         mask_source=mask_source if mask is not None else None,
         survives_object_erased=survives_obj, survives_background_erased=survives_bg,
         object_erased_prediction=erased_pred,
+        decisive_on_object=on_object, decisive_object_cover=cover, peak_on_object=peak_on,
         passes=passes,
     )
