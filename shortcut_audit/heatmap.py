@@ -60,7 +60,7 @@ def run_heatmap(image: str | os.PathLike, model: str | os.PathLike | OnnxClassif
             t_index = clf.labels.index(target)
         else:
             raise UsageError(f"--target {target!r} is not one of the model's labels "
-                             f"({', '.join(clf.labels)}); pass one of them.")
+                             f"({', '.join(clf.labels[:20])}{', ...' if len(clf.labels) > 20 else ''}); pass one of them.")
         if not 0 <= t_index < clf.n_classes:
             raise UsageError(f"--target {t_index} is out of range for {clf.n_classes} classes.")
     total = pass_count(plan, clf.height, clf.width) + 1
