@@ -112,6 +112,10 @@ class AuditResult:
             "run": self.run,
         }
 
+    def _repr_html_(self) -> str:          # Jupyter; matplotlib is imported only here
+        from .report.notebook import audit_html
+        return audit_html(self)
+
     def at_or_above(self, gate: str) -> list[Finding]:
         """Findings at or above ``gate`` (``suspect`` < ``confirmed``; ``never`` = none)."""
         if gate == "never":
