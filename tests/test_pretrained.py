@@ -141,7 +141,8 @@ def test_pointing_game(heatmaps, setup):
         assert info["target"] == info["predicted"]            # explained: the top-1 class
         shape = np.asarray(Image.open(files[name])).shape[:2]
         hits[name] = _peak_hit(values, shape, PHOTOS[name][2])
-    print("pointing game:", hits)
+    print("pointing game:", hits, "heatmap passes/s:",
+          {n: round(i["passes"] / i["elapsed_seconds"], 1) for n, (i, _) in heatmaps.items()})
     # Zhang et al. report 70-90% accuracy for good maps on VOC/COCO; a random point
     # hits these boxes with probability equal to their area share (about 0.5 on average).
     assert sum(hits.values()) >= 5, hits
