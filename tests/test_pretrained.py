@@ -143,8 +143,8 @@ def test_pointing_game(heatmaps, setup):
         hits[name] = _peak_hit(values, shape, PHOTOS[name][2])
     print("pointing game:", hits, "heatmap passes/s:",
           {n: round(i["passes"] / i["elapsed_seconds"], 1) for n, (i, _) in heatmaps.items()})
-    # Zhang et al. report 70-90% accuracy for good maps on VOC/COCO; a random point
-    # hits these boxes with probability equal to their area share (about 0.5 on average).
+    # A point drawn uniformly at random hits a box with the probability of its area share:
+    # 2.6 hits of these 6 expected (0.87 + 0.32 + 0.04 + 0.26 + 0.61 + 0.45, tolerance aside).
     assert sum(hits.values()) >= 5, hits
 
 
