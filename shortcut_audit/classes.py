@@ -109,15 +109,22 @@ class ClassAccumulator:
     """Streams heatmaps into per-class sums (the only heatmap state of a scan)."""
 
     def __init__(self, n_classes: int, shape: tuple[int, int]):
-        self.sums = np.zeros((n_classes,) + tuple(shape), dtype=np.float64)
-        self.counts = np.zeros(n_classes, dtype=np.int64)
+        # Sums only for the classes that have images: a 1,000-output model audited on a
+        # few of its classes holds a few maps, not 1,000 (400 MB at 224 x 224).
+        self.n_classes = n_classes
+        self.shape = tuple(shape)
+        self.sums: dict[int, np.ndarray] = {}
+        self.counts: dict[int, int] = {}
 
     def add(self, label: int, heatmap: np.ndarray) -> None:
+        if label not in self.sums:
+            self.sums[label] = np.zeros(self.shape, dtype=np.float64)
+            self.counts[label] = 0
         self.sums[label] += heatmap
         self.counts[label] += 1
 
     def mean(self, label: int) -> np.ndarray | None:
-        if self.counts[label] == 0:
+        if not self.counts.get(label):
             return None
         return (self.sums[label] / self.counts[label]).astype(np.float32)
 
@@ -158,8 +165,11 @@ def summarise_classes(images: list[ImageSummary], labels: tuple[str, ...], *,
     """
     shape = shape or (64, 64)
     out = []
+    by_label: dict[int, list[ImageSummary]] = {}
+    for im in images:                  # once: a model may have 1,000 labels
+        by_label.setdefault(im.label, []).append(im)
     for index, name in enumerate(labels):
-        members = [im for im in images if im.label == index]
+        members = by_label.get(index)
         if not members:
             continue
         right = [im for im in members if im.correct]

@@ -357,7 +357,8 @@ def inspect_model(
         ("batch", "dynamic" if inp["dynamic_batch"] else f"fixed at {inp['fixed_batch']}"),
         ("preprocessing", f"x * {inp['scale']:.6g}, mean {inp['mean']}, std {inp['std']}, resize {inp['resize']}"),
         ("output", f"{info['output']['name']}: {info['output']['kind']}, {info['output']['n_classes']} classes"),
-        ("labels", ", ".join(info["labels"])),
+        ("labels", ", ".join(info["labels"][:20]) + (f", ... and {len(info['labels']) - 20} more"
+                                                      if len(info["labels"]) > 20 else "")),
         ("batch size", str(info["batch_size"])),
         ("speed", f"{info['passes_per_second']:,.0f} passes/s (random inputs, this machine)"),
         ("sha256", info["sha256"]),

@@ -342,6 +342,10 @@ class CompareResult:
     def counts(self) -> dict[str, int]:
         return {v: sum(1 for f in self.findings if f.verdict == v) for v in VERDICTS}
 
+    def _repr_html_(self) -> str:          # Jupyter; matplotlib is imported only here
+        from .report.notebook import compare_html
+        return compare_html(self)
+
     def exit_code(self, fail_on: str) -> int:
         """1 when a finding is at or above the gate, else 0.
 

@@ -246,8 +246,27 @@ def _bomb_reason(pixels: int, dims: tuple[int, int] | None = None) -> str:
     return f"declared size {shape} exceeds the {MAX_PIXELS / 1e6:.1f} MP limit (decompression bomb guard)"
 
 
-def _decode(file: str | os.PathLike) -> Image.Image:
+#: A JPEG is decoded at a reduced scale (1/2, 1/4 or 1/8, by its DCT: Pillow's draft
+#: mode) only when the result keeps at least this many times the model's input on each
+#: side, so the bilinear resize that follows still averages several pixels per output.
+DRAFT_MARGIN = 2
+
+
+def _draft(im: Image.Image, size: tuple[int, int]) -> None:
+    """Ask a JPEG's decoder for the smallest DCT scale that keeps ``DRAFT_MARGIN`` times
+    ``size`` = (height, width), the model's input in display orientation."""
+    height, width = size
+    if im.getexif().get(0x0112, 1) in (5, 6, 7, 8):
+        height, width = width, height      # stored turned by 90 degrees: rows are columns
+    im.draft(im.mode, (DRAFT_MARGIN * width, DRAFT_MARGIN * height))
+
+
+def _decode(file: str | os.PathLike, size: tuple[int, int] | None = None) -> Image.Image:
     """Open, refuse bombs from the header, decode the first frame, apply EXIF orientation.
+
+    With ``size`` (the model input, height and width), a JPEG much larger than it is
+    decoded at a reduced scale (:data:`DRAFT_MARGIN`); the image is then smaller than
+    the file's declared size.
 
     Raises
     ------
@@ -269,6 +288,8 @@ def _decode(file: str | os.PathLike) -> Image.Image:
             width, height = im.size
             if width * height > MAX_PIXELS:
                 raise ImageSkip(_bomb_reason(width * height, (width, height)))
+            if size is not None and im.format == "JPEG":
+                _draft(im, size)
             im.load()  # first frame of an animation: Image.open starts there
             return ImageOps.exif_transpose(im)  # a copy, detached from the file
     except ImageSkip:
@@ -463,7 +484,7 @@ def load_image(
     """
     opts = _check_options(size, channels, resize, background)
     try:
-        return _pixels(_decode(file), opts)
+        return _pixels(_decode(file, opts.size), opts)
     except ImageSkip as exc:
         raise ImageSkip(exc.reason, _display(os.fsdecode(file))) from None
 
@@ -859,7 +880,8 @@ def class_names(entries: Iterable[ImageEntry]) -> tuple[str, ...]:
 def _record(entry: ImageEntry, opts: _Options) -> ImageRecord | Skip:
     """Decode one entry; every reason it cannot be used becomes a Skip."""
     try:
-        image = _decode(entry.file)
+        # a mask is checked against the image's full size, so only a maskless JPEG is drafted
+        image = _decode(entry.file, opts.size if entry.mask_file is None else None)
         mask = None
         if entry.mask_file is not None:
             try:

@@ -18,14 +18,25 @@ from .scan import DEFAULT_FILL, DEFAULT_PLAN
 from .sensitivity import heatmap_job, peak_box
 from .store import write_bytes_atomic, write_json
 
-__all__ = ["run_heatmap"]
+__all__ = ["HeatmapResult", "run_heatmap"]
+
+
+class HeatmapResult(dict):
+    """What :func:`run_heatmap` returns: heatmap.json's content (a dict), plus ``out``,
+    the folder it was written to; it shows its overlay in a notebook."""
+
+    out: Path | None = None
+
+    def _repr_html_(self) -> str:          # Jupyter; matplotlib is imported only here
+        from .report.notebook import heatmap_html
+        return heatmap_html(self)
 
 
 def run_heatmap(image: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *,
                 out: str | os.PathLike, model_config: ModelConfig | None = None,
                 plan: Plan = DEFAULT_PLAN, fill: Fill = DEFAULT_FILL, target: str | int | None = None,
                 score: str = "prob", tolerance: float | None = None,
-                progress: Callable[[dict], None] | None = None) -> dict:
+                progress: Callable[[dict], None] | None = None) -> HeatmapResult:
     """Compute one image's occlusion heatmap and write heatmap.npy, overlay.png, heatmap.json.
 
     Parameters
@@ -42,8 +53,8 @@ def run_heatmap(image: str | os.PathLike, model: str | os.PathLike | OnnxClassif
 
     Returns
     -------
-    dict
-        The content of heatmap.json.
+    HeatmapResult
+        The content of heatmap.json (a dict), with ``out`` set.
 
     Raises
     ------
@@ -60,7 +71,7 @@ def run_heatmap(image: str | os.PathLike, model: str | os.PathLike | OnnxClassif
             t_index = clf.labels.index(target)
         else:
             raise UsageError(f"--target {target!r} is not one of the model's labels "
-                             f"({', '.join(clf.labels)}); pass one of them.")
+                             f"({', '.join(clf.labels[:20])}{', ...' if len(clf.labels) > 20 else ''}); pass one of them.")
         if not 0 <= t_index < clf.n_classes:
             raise UsageError(f"--target {t_index} is out of range for {clf.n_classes} classes.")
     total = pass_count(plan, clf.height, clf.width) + 1
@@ -91,4 +102,6 @@ def run_heatmap(image: str | os.PathLike, model: str | os.PathLike | OnnxClassif
             "size": [clf.height, clf.width], "tolerance": hm.tolerance,
             "error_estimate": hm.error_estimate, "elapsed_seconds": round(elapsed, 3)}
     write_json(out_dir / "heatmap.json", info)
-    return info
+    result = HeatmapResult(info)
+    result.out = out_dir
+    return result

@@ -114,6 +114,10 @@ class AuditResult:
             "run": self.run,
         }
 
+    def _repr_html_(self) -> str:          # Jupyter; matplotlib is imported only here
+        from .report.notebook import audit_html
+        return audit_html(self)
+
     def at_or_above(self, gate: str) -> list[Finding]:
         """Findings at or above ``gate`` (``suspect`` < ``confirmed``; ``never`` = none)."""
         if gate == "never":
@@ -123,6 +127,37 @@ class AuditResult:
         if gate == "confirmed":
             return [f for f in self.findings if f.status == "confirmed"]
         raise UsageError(f"--fail-on must be suspect, confirmed or never; got {gate!r}.")
+
+
+def _label_key(name: str) -> str:
+    return " ".join(name.replace("_", " ").replace("-", " ").casefold().split())
+
+
+def match_labels(dataset_names: Sequence[str], labels: Sequence[str]) -> dict[str, int]:
+    """Dataset class name -> model output index.
+
+    A name equal to a label matches it; otherwise a name that equals exactly one label
+    once case, underscores and hyphens are ignored (a folder ``Egyptian_cat`` for the
+    label ``Egyptian cat``) matches that one. Names that match nothing are left out.
+    """
+    index = {name: i for i, name in enumerate(labels)}
+    loose: dict[str, list[int]] = {}
+    for i, name in enumerate(labels):
+        loose.setdefault(_label_key(name), []).append(i)
+    out = {}
+    for name in dataset_names:
+        if name in index:
+            out[name] = index[name]
+        elif len(loose.get(_label_key(name), ())) == 1:
+            out[name] = loose[_label_key(name)][0]
+    return out
+
+
+def _some(names: Sequence[str], k: int = 8) -> str:
+    """The first ``k`` names, and how many more (a 1,000-class model's labels in one line)."""
+    names = list(names)
+    more = f", ... and {len(names) - k} more" if len(names) > k else ""
+    return ", ".join(names[:k]) + more
 
 
 def _image_dict(im: ImageSummary, labels: Sequence[str]) -> dict:
@@ -259,19 +294,19 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
         classifier = model
     else:
         classifier = OnnxClassifier(model, model_config, dataset_labels=names)
-    label_index = {name: i for i, name in enumerate(classifier.labels)}
+    label_index = match_labels(names, classifier.labels)
     usable: list[ImageEntry] = []
     for e in entries:
         if e.label is None or e.label not in label_index:
             skipped.append(Skip(path=e.path, reason=(
-                f"label {e.label!r} is not one of the model's labels ({', '.join(classifier.labels)})"
+                f"label {e.label!r} is not one of the model's labels ({_some(classifier.labels)})"
                 if e.label is not None else "no label")))
         else:
             usable.append(e)
     if not usable:
         raise DataError(
-            f"none of the dataset's labels ({', '.join(names)}) is one of the model's labels "
-            f"({', '.join(classifier.labels)}); pass --labels with the model's class names in output order.")
+            f"none of the dataset's labels ({_some(names)}) is one of the model's labels "
+            f"({_some(classifier.labels)}); pass --labels with the model's class names in output order.")
 
     out_dir = Path(out) if out is not None else None
     store = None

@@ -492,3 +492,67 @@ def test_gray_padding_and_1bit_images_use_pillows_luma(tmp_path):
     assert luma == 104  # 0.299 * 0 + 0.587 * 128 + 0.114 * 255 = 104.2
     np.testing.assert_array_equal(out[[0, 3], :, 0], np.full((2, 4), 104, np.float32))
     np.testing.assert_array_equal(out[1:3, :, 0], np.full((2, 4), 255, np.float32))
+
+
+# --------------------------------------------------------------- JPEG draft decoding
+
+def _camera_jpeg(path, orientation: int = 6):
+    """A 4000x3000 camera-like JPEG stored turned, with the EXIF tag that turns it back.
+
+    The displayed picture is 3000 wide and 4000 tall: smooth gradients, a red square at
+    its top left and a dark disc low on the right, plus fine texture."""
+    h, w = 4000, 3000
+    y, x = np.mgrid[0:h, 0:w].astype(np.float32)
+    rng = np.random.default_rng(3)
+    img = np.stack([90 + 100 * x / w, 60 + 120 * y / h, 140 + 60 * np.sin(x / 300.0)], axis=-1)
+    img += rng.normal(0, 6, (h, w, 1))
+    img[200:1000, 200:1000] = (230, 20, 20)
+    img[((y - 3200) ** 2 + (x - 2200) ** 2) < 500 ** 2] = (20, 20, 30)
+    shown = Image.fromarray(np.clip(img, 0, 255).astype(np.uint8))
+    stored = shown.transpose(Image.Transpose.ROTATE_90)       # exif_transpose(6) turns it back
+    exif = Image.Exif()
+    exif[0x0112] = orientation
+    stored.save(path, quality=90, exif=exif.tobytes())
+    return shown
+
+
+def test_big_rotated_jpeg_decodes_reduced_with_the_same_orientation_and_pixels(tmp_path):
+    path = tmp_path / "camera.jpg"
+    shown = _camera_jpeg(path)
+    with Image.open(path) as im:
+        assert im.size == (4000, 3000)                         # stored landscape
+    # Reference: the full decode, turned by Pillow's own exif_transpose, one bilinear resize.
+    with Image.open(path) as im:
+        full = ImageOps.exif_transpose(im).convert("RGB")
+    assert full.size == (3000, 4000)
+    for size in ((224, 224), (300, 200)):
+        want = np.asarray(full.resize((size[1], size[0]), Image.Resampling.BILINEAR, reducing_gap=None),
+                          np.float32)
+        got = load_image(path, size=size)
+        assert got.shape == (*size, 3)
+        diff = np.abs(got - want)
+        # The draft decode (1/4 scale by the DCT here) then bilinear, against full decode
+        # then bilinear: within 1 level of 255 on average and 8 at any pixel (measured
+        # 0.12 and 2 with Pillow 13).
+        assert diff.mean() < 1.0, diff.mean()
+        assert diff.max() <= 8, diff.max()
+        # Orientation: the red square is at the top left, the dark disc low on the right.
+        h, w = size
+        assert got[int(0.15 * h), int(0.15 * w)].tolist()[0] > 200
+        assert got[int(0.8 * h), int(0.73 * w)].max() < 60
+
+
+def test_draft_keeps_twice_the_model_size(tmp_path):
+    # Pillow's draft picks the largest DCT scale whose result keeps the requested size;
+    # the request is DRAFT_MARGIN times the model input, turned for orientation 6.
+    from shortcut_audit.dataset import DRAFT_MARGIN, _decode
+    path = tmp_path / "camera.jpg"
+    _camera_jpeg(path)
+    for size, expected in (((224, 224), (750, 1000)), ((600, 400), (1500, 2000)),
+                           ((1000, 224), (1500, 2000)), ((1600, 1200), (3000, 4000)),
+                           # without turning the request, 1/2 scale would leave 1,500 < 2,000 columns
+                           ((224, 1000), (3000, 4000))):
+        im = _decode(path, size)
+        assert im.size == expected, (size, im.size)
+        assert im.size[0] >= DRAFT_MARGIN * size[1] or im.size == (3000, 4000)
+        assert im.size[1] >= DRAFT_MARGIN * size[0] or im.size == (3000, 4000)

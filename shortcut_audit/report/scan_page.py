@@ -56,6 +56,9 @@ TEST_EXAMPLES = 12
 
 # ------------------------------------------------------------------------ plan
 
+#: Model labels spelled out in the report's model table; a 1,000-class model's are cut.
+LABELS_SHOWN = 20
+
 def tile_name(group: str, path: str) -> str:
     """The figure name of image ``path``'s tile in gallery ``group``."""
     return f"tile-{group}-{ResultStore.key(path)[:16]}"
@@ -448,7 +451,9 @@ def _model_rows(model: dict) -> list[tuple[str, str]]:
         rows.append(("output", f"{output.get('name', '?')}: {output.get('kind', '?')}, "
                                f"{output.get('n_classes', '?')} classes"))
     labels = model.get("labels") or []
-    rows.append(("labels", ", ".join(str(x) for x in labels) or "–"))
+    shown = [str(x) for x in labels[:LABELS_SHOWN]]
+    more = f", … and {len(labels) - LABELS_SHOWN:,} more (audit.json lists them)" if len(labels) > LABELS_SHOWN else ""
+    rows.append(("labels", ", ".join(shown) + more if shown else "–"))
     return rows
 
 
