@@ -1013,6 +1013,7 @@ class OnnxClassifier:
             rates[size] = size / max(min(times), 1e-9)
             if sum(times) > slow:    # not on one slow size: a busy moment would decide
                 break
+        self.batch_rates = dict(rates)     # reused by measured_rate (cost estimates)
         if not rates:
             return 1
         best = max(rates.values())
@@ -1261,6 +1262,25 @@ class OnnxClassifier:
             elapsed = time.perf_counter() - start
             if elapsed >= seconds:
                 return count / elapsed
+
+    @property
+    def measured_rate(self) -> float:
+        """The session's passes per second at :attr:`batch_size`.
+
+        The rate measured when the batch size was chosen; when it was given (or the
+        batch is fixed), two timed batches of random images, once.
+        """
+        rates = getattr(self, "batch_rates", None) or {}
+        if self.batch_size not in rates:
+            rng = np.random.default_rng(1)
+            images = rng.uniform(0, 255, size=(self.batch_size, self.height, self.width, self.channels))
+            feed = self._prepare(images.astype(np.float32))
+            self._session.run([self.output_name], {self.input_name: feed})     # warm-up (allocates)
+            start = time.perf_counter()
+            self._session.run([self.output_name], {self.input_name: feed})
+            rates[self.batch_size] = self.batch_size / max(time.perf_counter() - start, 1e-9)
+            self.batch_rates = rates
+        return float(rates[self.batch_size])
 
     def describe(self) -> dict:
         """What the tool understood of the model, as JSON-able data.
