@@ -51,7 +51,7 @@ BEGIN = "<!-- wholescan:begin -->"
 END = "<!-- wholescan:end -->"
 
 FULL = dict(estimate_images=24, linear_sizes=(200, 2000), linear_side=32, linear_image=32,
-            depthwise_images=24, size=224, raw_seconds=3.0, threads=(1, 2))
+            depthwise_images=8, size=224, raw_seconds=5.0, threads=(1, 2))
 QUICK = dict(estimate_images=4, linear_sizes=(4, 40), linear_side=16, linear_image=16,
              depthwise_images=2, size=32, raw_seconds=0.2, threads=(1,))
 
@@ -88,18 +88,25 @@ class PassCounter:
         self.cls.run = self.original
 
 
-def raw_rate(clf: OnnxClassifier, seconds: float) -> float:
-    """The session alone on one prepared random batch at the classifier's batch size."""
-    rng = np.random.default_rng(2)
-    batch = rng.uniform(0, 255, size=(clf.batch_size, clf.height, clf.width, clf.channels)).astype(np.float32)
+def raw_rate(clf: OnnxClassifier, images: Path, seconds: float, min_calls: int = 5) -> float:
+    """The session alone on one prepared batch of the scan's own images (decoded as the
+    scan decodes them) at the classifier's batch size, over ``seconds`` and ``min_calls``."""
+    from shortcut_audit.dataset import iter_records, list_images
+
+    entries, _ = list_images(images)
+    pixels = [r.pixels for r in iter_records(entries[:clf.batch_size], size=(clf.height, clf.width),
+                                             channels=clf.channels, resize=clf.resize)
+              if hasattr(r, "pixels")]
+    batch = np.stack([pixels[i % len(pixels)] for i in range(clf.batch_size)]).astype(np.float32)
     feed = {clf.input_name: clf._prepare(batch)}
     names = [clf.output_name]
     clf._session.run(names, feed)
-    count, start = 0, time.perf_counter()
+    count, calls, start = 0, 0, time.perf_counter()
     while True:
         clf._session.run(names, feed)
         count += clf.batch_size
-        if time.perf_counter() - start >= seconds:
+        calls += 1
+        if time.perf_counter() - start >= seconds and calls >= min_calls:
             return count / (time.perf_counter() - start)
 
 
@@ -122,16 +129,28 @@ def estimate_figure(cfg: dict, work: Path, threads: int) -> dict:
 
 
 def linear_figure(cfg: dict, work: Path) -> dict:
+    """Wall time of whole scans of two sizes, and of their per-image phase (first to
+    last progress event of the images phase)."""
     model = builders.save(builders.small_cnn(size=cfg["linear_side"], seed=2), work / "small.onnx")
-    out = {}
+    whole, phase = {}, {}
     for n in cfg["linear_sizes"]:
         images = builders.write_image_set(work / f"lin{n}", n, size=cfg["linear_image"], seed=12)
         clf = OnnxClassifier(model, ModelConfig(threads=1, batch_size=32), dataset_labels=builders.KINDS)
+        marks = []
+
+        def progress(e, marks=marks):
+            if e.get("phase") == "images":
+                marks.append(time.perf_counter())
+
         t0 = time.perf_counter()
-        _scan_fn()(images, clf, out=work / f"lin_out{n}", settings=ScanSettings())
-        out[n] = time.perf_counter() - t0
+        _scan_fn()(images, clf, out=work / f"lin_out{n}", settings=ScanSettings(), progress=progress)
+        whole[n] = time.perf_counter() - t0
+        phase[n] = marks[-1] - marks[0]
     a, b = cfg["linear_sizes"]
-    return {"sizes": [a, b], "seconds": [out[a], out[b]], "ratio": out[b] / out[a], "expected": b / a}
+    per_image = (whole[b] - whole[a]) / (b - a)
+    return {"sizes": [a, b], "seconds": [whole[a], whole[b]], "ratio": whole[b] / whole[a],
+            "phase_seconds": [phase[a], phase[b]], "phase_ratio": phase[b] / phase[a], "expected": b / a,
+            "fixed_seconds": whole[a] - a * per_image, "per_image_ms": 1000 * per_image}
 
 
 def depthwise_figure(cfg: dict, work: Path, threads: int, profile: Path | None = None) -> dict:
@@ -142,6 +161,10 @@ def depthwise_figure(cfg: dict, work: Path, threads: int, profile: Path | None =
                                       seed=13)
     out = work / f"dw_out{threads}"
     prof = cProfile.Profile() if profile is not None else None
+    # the session's own rate before (on a classifier of its own, same batch size) and after
+    probe = OnnxClassifier(model, ModelConfig(threads=threads), dataset_labels=builders.KINDS)
+    raw_before = raw_rate(probe, images, cfg["raw_seconds"])
+    del probe
     with PassCounter() as counter:
         t0 = time.perf_counter()
         if prof:
@@ -153,8 +176,8 @@ def depthwise_figure(cfg: dict, work: Path, threads: int, profile: Path | None =
         elapsed = time.perf_counter() - t0
     if prof:
         prof.dump_stats(str(profile))
-    before = raw_rate(clf, cfg["raw_seconds"])
-    after = raw_rate(clf, cfg["raw_seconds"])
+    after = raw_rate(clf, images, cfg["raw_seconds"])
+    before = raw_before
     raw = (before + after) / 2
     whole = counter.passes / elapsed
     return {"threads": threads, "parameters": builders.parameter_count(m), "images": result.dataset["audited"],
@@ -177,9 +200,12 @@ def block(res: dict, machine: dict) -> str:
                      f"({e['passes_per_image']:.1f}) | {e['rate']:.0f}/s | {e['estimated_seconds']:.1f} s | "
                      f"{e['measured_seconds']:.1f} s | {e['ratio']:.2f} |")
     lin = res["linear"]
-    lines.append(f"\nLinear growth (small random CNN at 32 x 32, batch 32, one thread): "
+    lines.append(f"\nLinear growth (small random CNN at 32 x 32, batch 32, one thread, report written): "
                  f"{lin['sizes'][0]} images {lin['seconds'][0]:.1f} s, {lin['sizes'][1]} images "
-                 f"{lin['seconds'][1]:.1f} s: ratio {lin['ratio']:.2f} (expected {lin['expected']:.0f}).\n")
+                 f"{lin['seconds'][1]:.1f} s: ratio {lin['ratio']:.2f} (expected {lin['expected']:.0f}); "
+                 f"the per-image phase alone {lin['phase_seconds'][0]:.1f} s and {lin['phase_seconds'][1]:.1f} s: "
+                 f"ratio {lin['phase_ratio']:.2f}. As a line: {lin['fixed_seconds']:.1f} s fixed "
+                 f"(model, listing, aggregation, report) + {lin['per_image_ms']:.1f} ms an image.\n")
     lines.append("Whole scan on the depthwise-separable 224 x 224 network (every pass of the scan over its "
                  "wall time, against the session alone at the same batch size):\n")
     lines.append("| threads | parameters | images | batch | passes (of which per-image) | seconds | "
