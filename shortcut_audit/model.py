@@ -996,6 +996,7 @@ class OnnxClassifier:
         cap = max(1, MAX_BATCH_BYTES // per_image)
         rng = np.random.default_rng(1)
         rates: dict[int, float] = {}
+        typical: dict[int, float] = {}
         # Not 1: the engine's own cost per call makes single images its slowest size
         # (bench/RESULTS.md), however fast onnxruntime runs them.
         for size in sorted({min(c, cap) for c in BATCH_CANDIDATES if c > 1}):
@@ -1011,9 +1012,10 @@ class OnnxClassifier:
             except Exception:  # e.g. out of memory at this size: keep what worked
                 break
             rates[size] = size / max(min(times), 1e-9)
+            typical[size] = size * len(times) / max(sum(times), 1e-9)   # what a long run sees
             if sum(times) > slow:    # not on one slow size: a busy moment would decide
                 break
-        self.batch_rates = dict(rates)     # reused by measured_rate (cost estimates)
+        self.batch_rates = typical         # mean rates, reused by measured_rate (cost estimates)
         if not rates:
             return 1
         best = max(rates.values())
@@ -1267,8 +1269,9 @@ class OnnxClassifier:
     def measured_rate(self) -> float:
         """The session's passes per second at :attr:`batch_size`.
 
-        The rate measured when the batch size was chosen; when it was given (or the
-        batch is fixed), two timed batches of random images, once.
+        The mean rate of the timed runs when the batch size was chosen (the choice itself
+        takes their best, which a busy machine rarely sustains); when the size was given
+        (or the batch is fixed), one timed batch of random images after a warm-up, once.
         """
         rates = getattr(self, "batch_rates", None) or {}
         if self.batch_size not in rates:
