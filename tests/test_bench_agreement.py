@@ -55,3 +55,22 @@ def test_the_grid_agrees_with_itself(tmp_path):
     for r in rows:
         if r["plan"] != "grid (reference)":
             assert r["passes"] <= 20 + r["passes_ref"] - 226 + 1e-9   # its budget replaces the 226 heatmap passes
+
+
+def test_wholescan_quick_produces_every_figure(tmp_path):
+    # bench/wholescan.py in its quick form: every figure, and the derived numbers follow
+    # from the measured ones (no speed is asserted)
+    out = tmp_path / "w.json"
+    proc = subprocess.run([sys.executable, str(ROOT / "bench" / "wholescan.py"), "--quick", "--json", str(out)],
+                          capture_output=True, text=True, cwd=str(ROOT), timeout=300)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    res = json.loads(out.read_text())
+    for e in res["estimate"]:
+        assert e["ratio"] == pytest.approx(e["measured_seconds"] / e["estimated_seconds"])
+        assert e["passes_per_image"] <= e["passes_per_image_estimated"]     # the estimate bounds the count
+    lin = res["linear"]
+    assert lin["ratio"] == pytest.approx(lin["seconds"][1] / lin["seconds"][0])
+    for d in res["depthwise"]:
+        # every pass counted at onnxruntime: the per-image ones and the batch-size measurement's
+        assert d["passes"] > d["engine_passes"] > 0
+        assert d["ratio"] == pytest.approx(d["whole_rate"] / d["raw_rate"])
