@@ -99,6 +99,8 @@ class CostEstimate:
 
     def describe(self) -> str:
         """One line for people, e.g. for a command line before the scan starts."""
+        if not self.rate > 0:
+            return f"{self.images} images x {self.passes_per_image} passes (the rate could not be measured)"
         text = (f"{self.images} images x {self.passes_per_image} passes at {self.rate:,.0f} passes/s "
                 f"(measured): about {_duration(self.seconds)}")
         if self.per_class:

@@ -1271,17 +1271,21 @@ class OnnxClassifier:
 
         The mean rate of the timed runs when the batch size was chosen (the choice itself
         takes their best, which a busy machine rarely sustains); when the size was given
-        (or the batch is fixed), one timed batch of random images after a warm-up, once.
+        (or the batch is fixed), one timed batch of random images after a warm-up, once;
+        0 when the model fails on it (the scan then reports the failure on real images).
         """
         rates = getattr(self, "batch_rates", None) or {}
         if self.batch_size not in rates:
             rng = np.random.default_rng(1)
             images = rng.uniform(0, 255, size=(self.batch_size, self.height, self.width, self.channels))
-            feed = self._prepare(images.astype(np.float32))
-            self._session.run([self.output_name], {self.input_name: feed})     # warm-up (allocates)
-            start = time.perf_counter()
-            self._session.run([self.output_name], {self.input_name: feed})
-            rates[self.batch_size] = self.batch_size / max(time.perf_counter() - start, 1e-9)
+            try:
+                feed = self._prepare(images.astype(np.float32))
+                self._session.run([self.output_name], {self.input_name: feed})     # warm-up (allocates)
+                start = time.perf_counter()
+                self._session.run([self.output_name], {self.input_name: feed})
+                rates[self.batch_size] = self.batch_size / max(time.perf_counter() - start, 1e-9)
+            except Exception:   # a model that fails on random input: the rate stays unknown (0)
+                rates[self.batch_size] = 0.0
             self.batch_rates = rates
         return float(rates[self.batch_size])
 

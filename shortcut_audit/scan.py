@@ -288,7 +288,7 @@ def scan(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *
                       "passes": engine.stats.passes if engine else 0,
                       "passes_per_second": engine.stats.passes_per_second if engine else 0.0})
 
-    if progress is not None and todo:    # the cost, stated before it is spent
+    if progress is not None and todo and hasattr(classifier, "measured_rate"):   # the cost, before it is spent
         from .cost import estimate_cost
         counts: dict[str, int] = {}
         for e in todo:

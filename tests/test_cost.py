@@ -105,3 +105,8 @@ def test_cli_prints_the_cost_before_the_scan(tmp_path):
     assert r.exit_code == 0, r.output
     line = next(ln for ln in r.output.splitlines() if ln.startswith("cost:"))
     assert "12 images x" in line and "passes/s (measured)" in line
+
+
+def test_an_unknown_rate_is_said_so():
+    e = estimate_cost({"a": 3}, GridPlan(patch=4, stride=4), 16, 16, rate=0.0, masks=False)
+    assert e.seconds == float("inf") and "could not be measured" in e.describe()
