@@ -8,6 +8,11 @@
   512 channels, global average pooling, 1000 logits (the first four named after the
   demo's classes, so it can scan their images); about 4.4 million parameters and
   0.36 GMAC a pass, seeded random (He-scaled) weights.
+- :func:`depthwise_cnn`: 224 x 224 RGB, MobileNet-like: a 3x3 stride-2 stem of 32
+  channels, then 13 depthwise-separable blocks (a 3x3 depthwise conv, ``group`` = the
+  channels, ReLU, a 1x1 pointwise conv, ReLU) up to 1024 channels, global average
+  pooling, 1000 logits; about 4.2 million parameters and 0.57 GMAC a pass, seeded random
+  (He-scaled) weights.
 - :func:`write_image_set`: small PNGs in one folder per class, like the scan tests'
   fixtures (a coloured square on a noisy backdrop, a bright corner on one class).
 
@@ -101,6 +106,41 @@ def large_cnn(*, size: int = 224, seed: int = 0, classes: int = 1000,
     # the first labels are the image sets' class names, so a scan can run on them
     labels = list(KINDS) + [f"c{i:03d}" for i in range(len(KINDS), classes)]
     return _finish(nodes, inits, x, cur, classes, "large_cnn", labels)
+
+
+#: (channels out, stride) of each depthwise-separable block, after a 32-channel stem.
+DEPTHWISE_BLOCKS = ((64, 1), (128, 2), (128, 1), (256, 2), (256, 1), (512, 2), (512, 1), (512, 1),
+                    (512, 1), (512, 1), (512, 1), (1024, 2), (1024, 1))
+
+
+def depthwise_cnn(*, size: int = 224, seed: int = 0, classes: int = 1000, stem: int = 32,
+                  blocks=DEPTHWISE_BLOCKS) -> onnx.ModelProto:
+    """A MobileNet-like network of depthwise-separable blocks at ``size`` x ``size``."""
+    rng = np.random.default_rng(seed)
+    x = helper.make_tensor_value_info("image", TensorProto.FLOAT, ["N", 3, size, size])
+    nodes, inits = [], []
+    cur = _conv(nodes, inits, rng, "stem", "image", 3, stem, stride=2)
+    cin = stem
+    for i, (cout, stride) in enumerate(blocks):
+        # depthwise 3x3: one filter per channel (group = channels)
+        w = rng.normal(0.0, np.sqrt(2.0 / 9), size=(cin, 1, 3, 3)).astype(np.float32)
+        b = rng.normal(0.0, 0.05, size=cin).astype(np.float32)
+        inits += [numpy_helper.from_array(w, f"dw{i}_w"), numpy_helper.from_array(b, f"dw{i}_b")]
+        nodes.append(helper.make_node("Conv", [cur, f"dw{i}_w", f"dw{i}_b"], [f"dw{i}_c"], group=cin,
+                                      pads=[1, 1, 1, 1], strides=[stride, stride]))
+        nodes.append(helper.make_node("Relu", [f"dw{i}_c"], [f"dw{i}_r"]))
+        # pointwise 1x1
+        w = rng.normal(0.0, np.sqrt(2.0 / cin), size=(cout, cin, 1, 1)).astype(np.float32)
+        b = rng.normal(0.0, 0.05, size=cout).astype(np.float32)
+        inits += [numpy_helper.from_array(w, f"pw{i}_w"), numpy_helper.from_array(b, f"pw{i}_b")]
+        nodes.append(helper.make_node("Conv", [f"dw{i}_r", f"pw{i}_w", f"pw{i}_b"], [f"pw{i}_c"]))
+        nodes.append(helper.make_node("Relu", [f"pw{i}_c"], [f"pw{i}_r"]))
+        cur, cin = f"pw{i}_r", cout
+    nodes.append(helper.make_node("GlobalAveragePool", [cur], ["gap"]))
+    nodes.append(helper.make_node("Flatten", ["gap"], ["flat"], axis=1))
+    cur = _dense(nodes, inits, rng, "fc", "flat", cin, classes, relu=False)
+    labels = list(KINDS) + [f"c{i:03d}" for i in range(len(KINDS), classes)]
+    return _finish(nodes, inits, x, cur, classes, "depthwise_cnn", labels)
 
 
 def parameter_count(model: onnx.ModelProto) -> int:

@@ -314,6 +314,10 @@ class _Bar:
         self.progress.__exit__(*exc)
 
     def __call__(self, event: dict) -> None:
+        if event.get("estimate") is not None:     # stated before the passes are spent
+            self.progress.console.print(f"cost: {event['estimate'].describe()}", highlight=False,
+                                        markup=False, soft_wrap=True)
+            return
         desc = f"{self.description} {event.get('phase', '')}".strip()
         if self.task is None:
             self.task = self.progress.add_task(desc, total=event.get("total", 0), rate="")

@@ -996,6 +996,7 @@ class OnnxClassifier:
         cap = max(1, MAX_BATCH_BYTES // per_image)
         rng = np.random.default_rng(1)
         rates: dict[int, float] = {}
+        typical: dict[int, float] = {}
         # Not 1: the engine's own cost per call makes single images its slowest size
         # (bench/RESULTS.md), however fast onnxruntime runs them.
         for size in sorted({min(c, cap) for c in BATCH_CANDIDATES if c > 1}):
@@ -1011,8 +1012,10 @@ class OnnxClassifier:
             except Exception:  # e.g. out of memory at this size: keep what worked
                 break
             rates[size] = size / max(min(times), 1e-9)
+            typical[size] = size * len(times) / max(sum(times), 1e-9)   # what a long run sees
             if sum(times) > slow:    # not on one slow size: a busy moment would decide
                 break
+        self.batch_rates = typical         # mean rates, reused by measured_rate (cost estimates)
         if not rates:
             return 1
         best = max(rates.values())
@@ -1261,6 +1264,30 @@ class OnnxClassifier:
             elapsed = time.perf_counter() - start
             if elapsed >= seconds:
                 return count / elapsed
+
+    @property
+    def measured_rate(self) -> float:
+        """The session's passes per second at :attr:`batch_size`.
+
+        The mean rate of the timed runs when the batch size was chosen (the choice itself
+        takes their best, which a busy machine rarely sustains); when the size was given
+        (or the batch is fixed), one timed batch of random images after a warm-up, once;
+        0 when the model fails on it (the scan then reports the failure on real images).
+        """
+        rates = getattr(self, "batch_rates", None) or {}
+        if self.batch_size not in rates:
+            rng = np.random.default_rng(1)
+            images = rng.uniform(0, 255, size=(self.batch_size, self.height, self.width, self.channels))
+            try:
+                feed = self._prepare(images.astype(np.float32))
+                self._session.run([self.output_name], {self.input_name: feed})     # warm-up (allocates)
+                start = time.perf_counter()
+                self._session.run([self.output_name], {self.input_name: feed})
+                rates[self.batch_size] = self.batch_size / max(time.perf_counter() - start, 1e-9)
+            except Exception:   # a model that fails on random input: the rate stays unknown (0)
+                rates[self.batch_size] = 0.0
+            self.batch_rates = rates
+        return float(rates[self.batch_size])
 
     def describe(self) -> dict:
         """What the tool understood of the model, as JSON-able data.

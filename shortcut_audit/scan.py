@@ -327,6 +327,15 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
                       "passes": engine.stats.passes if engine else 0,
                       "passes_per_second": engine.stats.passes_per_second if engine else 0.0})
 
+    if progress is not None and todo and hasattr(classifier, "measured_rate"):   # the cost, before it is spent
+        from .cost import estimate_cost
+        counts: dict[str, int] = {}
+        for e in todo:
+            counts[e.label] = counts.get(e.label, 0) + 1
+        progress({"phase": "estimate", "done": done_count, "total": len(usable), "passes": 0,
+                  "passes_per_second": 0.0,
+                  "estimate": estimate_cost(counts, settings.plan, *shape, rate=classifier.measured_rate,
+                                            masks=bool(masks) or estimate_masks, per_class=(10, 50))})
     engine = PassEngine.for_classifier(classifier, settings.score,
                                        on_batch=lambda n: report_progress("images", engine))
     report_progress("images", engine)

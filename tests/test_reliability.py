@@ -56,7 +56,8 @@ CFG = ModelConfig(threads=1, batch_size=16)
 PLAN_ARGS = ["--no-confirm", "--no-report", "--patch", "4", "--stride", "4"]
 MODEL_ARGS = ["--threads", "1", "--batch-size", "16"]
 FAST_ARGS = PLAN_ARGS + MODEL_ARGS
-PROGRESS = re.compile(r"^audit images\b")  # the progress bar's final render, on stderr
+# the progress bar's final render and the cost stated before the audit, on stderr
+PROGRESS = re.compile(r"^(audit images\b|cost: )")
 
 
 # ------------------------------------------------------------------------ helpers
@@ -190,7 +191,8 @@ def snapshot(folder: Path, *, skip: Path | None = None) -> dict[str, tuple]:
 
 
 def assert_one_line_error(result, *needles: str) -> str:
-    """Exit 2 and one line, "error: ...", naming the problem (besides the progress bar's last state)."""
+    """Exit 2 and one line, "error: ...", naming the problem (besides the progress bar's last state
+    and the cost line)."""
     lines = [ln for ln in result.output.splitlines() if ln.strip() and not PROGRESS.match(ln)]
     assert result.exit_code == 2, result.output
     assert isinstance(result.exception, SystemExit), repr(result.exception)
