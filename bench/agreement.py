@@ -98,7 +98,7 @@ class AuditSet:
 
 
 def _scan_fn():
-    return getattr(sa, "audit", None) or sa.scan
+    return sa.audit
 
 
 def parse_plan(text: str):

@@ -61,7 +61,7 @@ def iou(a, b) -> float | None:
 
 
 def _run_audit(images, model_path, masks, out):
-    fn = getattr(shortcut_audit, "audit", None) or shortcut_audit.scan
+    fn = shortcut_audit.audit
     kwargs = {"masks": str(masks), "out": str(out)}
     if "report" in inspect.signature(fn).parameters:
         kwargs["report"] = False

@@ -600,7 +600,9 @@ def demo(
         cells = []
         for name in classes:
             fs = [f for f in audit.findings if f.class_name == name]
-            cells.append(", ".join(f"{f.kind} ({f.status})" for f in fs) or "-")
+            notes = [n for c in audit.classes if c.name == name for n in c.notes]
+            cells.append(", ".join([f"{f.kind} ({f.status})" for f in fs]
+                                   + (["note: a small part of the object"] if notes else [])) or "-")
         table.add_row(model, *cells)
     out.print(table)
     for name, cmp in result["comparisons"].items():
@@ -639,6 +641,8 @@ def print_summary(result) -> None:
         text = "; ".join(f"{f.id} {f.kind} ({f.status})" for f in fs)
         if c.not_judged:
             text = "; ".join(([text] if text else []) + ["not judged: " + r for r in c.not_judged])
+        if c.notes:
+            text = "; ".join(([text] if text else []) + ["note: reads a small part of the object"])
         text = text or "none"
         table.add_row(escape(c.name), str(c.images), f"{c.accuracy:.0%}", f"{c.mean_confidence:.2f}", escape(text))
     out.print(table)

@@ -14,7 +14,7 @@ from shortcut_audit.cost import ENGINE_SHARE, FIXED_SECONDS, estimate_cost, imag
 from shortcut_audit.engine import run_job
 from shortcut_audit.model import ModelConfig, OnnxClassifier
 from shortcut_audit.occlusion import AdaptivePlan, Fill, GridPlan, RandomPatchPlan
-from shortcut_audit.scan import ScanSettings, scan
+from shortcut_audit.scan import ScanSettings, audit as run_audit
 from shortcut_audit.sensitivity import image_job
 
 
@@ -87,7 +87,7 @@ def test_scan_states_the_cost_before_the_first_pass_and_keeps_to_its_count(tmp_p
     data = make_dataset(tmp_path / "data", n=4)
     model = clean_model(tmp_path / "m.onnx")
     events = []
-    result = scan(data, model, settings=ScanSettings(confirm=False), report=False, progress=events.append)
+    result = run_audit(data, model, settings=ScanSettings(confirm=False), report=False, progress=events.append)
     first = [e for e in events if "estimate" in e]
     assert len(first) == 1 and events.index(first[0]) <= 1 and first[0]["passes"] == 0
     est = first[0]["estimate"]
@@ -100,7 +100,7 @@ def test_scan_states_the_cost_before_the_first_pass_and_keeps_to_its_count(tmp_p
 def test_cli_prints_the_cost_before_the_scan(tmp_path):
     data = make_dataset(tmp_path / "data", n=4)
     model = corner_model(tmp_path / "m.onnx")
-    r = CliRunner().invoke(app, ["scan", str(data), "-m", str(model), "-o", str(tmp_path / "out"),
+    r = CliRunner().invoke(app, ["audit", str(data), "-m", str(model), "-o", str(tmp_path / "out"),
                                  "--no-confirm", "--no-report", "--fail-on", "never"], terminal_width=200)
     assert r.exit_code == 0, r.output
     line = next(ln for ln in r.output.splitlines() if ln.startswith("cost:"))

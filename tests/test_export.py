@@ -45,9 +45,6 @@ def in_tmp(tmp_path):
 def _command(line: str) -> list[str]:
     args = shlex.split(line)
     assert args[0] == "shortcut-audit"
-    names = {c.name or c.callback.__name__ for c in app.registered_commands}
-    if args[1] in ("scan", "audit") and args[1] not in names:   # the command's other name
-        args[1] = "audit" if "audit" in names else "scan"
     return args[1:]
 
 

@@ -101,7 +101,7 @@ def test_three_of_a_thousand_classes(tmp_path):
     model = _model(tmp_path)
     data = _dataset(tmp_path / "data")
     config = sa.ModelConfig(labels=tuple(sa.model.read_labels(labels_file)))
-    run = getattr(sa, "audit", None) or sa.scan
+    run = sa.audit
     result = run(data, model, out=tmp_path / "out", model_config=config, settings=SETTINGS)
 
     # Per audited class only, in output order; the folder "Gamma_Ray" is "gamma ray".

@@ -81,7 +81,7 @@ def audited(tmp_path_factory):
         (data / old).rename(data / new)
     model = corner_model(tmp / "m.onnx")
     config = sa.ModelConfig(labels=HOSTILE)
-    run = getattr(sa, "audit", None) or sa.scan
+    run = sa.audit
     result = run(data, model, out=tmp / "out", model_config=config, settings=sa.ScanSettings(confirm=False))
     return tmp, data, model, config, result
 

@@ -200,7 +200,7 @@ def test_audit_of_three_imagenet_classes(setup):
         photo = np.asarray(Image.open(files[name]))
         Image.fromarray(photo).save(data / label / f"{name}.png")
         Image.fromarray(photo[:, ::-1]).save(data / label / f"{name}_mirrored.png")
-    run = getattr(sa, "audit", None) or sa.scan
+    run = sa.audit
     settings = sa.ScanSettings(plan=GridPlan(patch=0.25, stride=0.125))
     result = run(data, model, out=root / "audit", model_config=config, settings=settings)
     by_name = {c.name: c for c in result.classes}

@@ -575,6 +575,7 @@ def render_report(audit: dict, figures: dict[str, bytes], *, timestamp: str | No
             "mean": _uri(figures, entry["mean"]), "scale": _uri(figures, entry["scale"]),
             "tiles": [_tile_view(p, n, images.get(p), figures) for p, n in zip(entry["paths"], entry["tiles"])],
             "not_judged": [str(r) for r in c.get("not_judged") or []],
+            "notes": [str(n) for n in c.get("notes") or []],
             # no rule ran at all (too few correct images), as opposed to one rule not running
             "unjudged": any("min_correct_images" in str(r) for r in c.get("not_judged") or []),
             "deletion_area": num((c.get("metrics") or {}).get("mean_deletion_area")),
