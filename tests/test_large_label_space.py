@@ -23,7 +23,7 @@ from scan_fixtures import SIZE, corner_model, make_dataset
 N_OUT = 1000
 ROWS = {"alpha": 10, "beta": 500, "gamma ray": 990}
 DELTA = 7
-SETTINGS = sa.ScanSettings(probe_budget=16)
+SETTINGS = sa.ScanSettings(test_budget=16)
 
 
 def _labels() -> list[str]:
