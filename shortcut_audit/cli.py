@@ -602,7 +602,7 @@ def demo(
             fs = [f for f in audit.findings if f.class_name == name]
             notes = [n for c in audit.classes if c.name == name for n in c.notes]
             cells.append(", ".join([f"{f.kind} ({f.status})" for f in fs]
-                                   + (["note: a small part of the object"] if notes else [])) or "-")
+                                   + (["note (object part)"] if notes else [])) or "-")
         table.add_row(model, *cells)
     out.print(table)
     for name, cmp in result["comparisons"].items():
