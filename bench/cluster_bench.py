@@ -103,7 +103,7 @@ def main() -> None:
     from scan_fixtures import corner_model, make_dataset
 
     from shortcut_audit.cluster import iter_cluster_results
-    from shortcut_audit.dataset import list_images
+    from shortcut_audit.listing import list_images
     from shortcut_audit.model import ModelConfig, OnnxClassifier
     from shortcut_audit.scan import ScanSettings, analyse_entries
 

@@ -91,7 +91,8 @@ class PassCounter:
 def raw_rate(clf: OnnxClassifier, images: Path, seconds: float, min_calls: int = 5) -> float:
     """The session alone on one prepared batch of the scan's own images (decoded as the
     scan decodes them) at the classifier's batch size, over ``seconds`` and ``min_calls``."""
-    from shortcut_audit.dataset import iter_records, list_images
+    from shortcut_audit.dataset import iter_records
+    from shortcut_audit.listing import list_images
 
     entries, _ = list_images(images)
     pixels = [r.pixels for r in iter_records(entries[:clf.batch_size], size=(clf.height, clf.width),

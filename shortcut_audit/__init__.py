@@ -12,7 +12,8 @@ See DESIGN.md for the stages and audit.json.
 
 __version__ = "0.1.0"
 
-from .dataset import ImageEntry, ImageRecord, Skip, class_names, list_images, load_image
+from .dataset import ImageEntry, ImageRecord, Skip, load_image
+from .listing import class_names, list_images
 from .engine import PassEngine
 from .errors import AuditError, ClusterError, DataError, ImageSkip, ModelError, OutputError, UsageError
 from .findings import Finding, Thresholds

@@ -25,7 +25,8 @@ import numpy as np
 from . import __version__
 from .confirm import add_motif_findings, confirm_findings
 from .classes import ClassAccumulator, ClassSummary, ImageSummary, summarise_classes
-from .dataset import ImageEntry, ImageRecord, Skip, class_names, iter_records, list_images
+from .dataset import ImageEntry, ImageRecord, Skip, iter_records
+from .listing import class_names, list_images
 from .engine import PassEngine, make_scorer
 from .errors import AuditError, DataError, ImageSkip, UsageError
 from .findings import Finding, Thresholds, judge, not_judged, object_part_note

@@ -29,7 +29,8 @@ from shortcut_audit import cluster  # noqa: E402
 from shortcut_audit import dataset as dataset_module  # noqa: E402
 from shortcut_audit.cluster import (ClusterError, check_cluster, iter_cluster_results,  # noqa: E402
                                     parse_cluster)
-from shortcut_audit.dataset import Skip, list_images  # noqa: E402
+from shortcut_audit.dataset import Skip  # noqa: E402
+from shortcut_audit.listing import list_images  # noqa: E402
 from shortcut_audit.errors import ModelError, UsageError  # noqa: E402
 from shortcut_audit.model import ModelConfig, OnnxClassifier  # noqa: E402
 from shortcut_audit.occlusion import GridPlan  # noqa: E402

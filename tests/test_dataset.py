@@ -18,13 +18,12 @@ from shortcut_audit.dataset import (
     ImageEntry,
     ImageRecord,
     Skip,
-    class_names,
     fit,
     iter_records,
-    list_images,
     load_image,
     load_mask,
 )
+from shortcut_audit.listing import class_names, list_images
 from shortcut_audit.errors import DataError, ImageSkip, UsageError
 
 RED, GREEN, BLUE, WHITE = bad.RED, bad.GREEN, bad.BLUE, bad.WHITE

@@ -16,7 +16,8 @@ import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 
-from shortcut_audit.dataset import list_images, load_image, load_mask
+from shortcut_audit.dataset import load_image, load_mask
+from shortcut_audit.listing import list_images
 from shortcut_audit.demo import demo_paths
 from shortcut_audit.demo.catalogue import RATES, plan, render_spec, to_model_input
 from shortcut_audit.demo.effects import load_assets, measure_effects
