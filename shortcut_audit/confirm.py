@@ -63,6 +63,29 @@ def _mask_of(rec: ImageRecord) -> np.ndarray | None:
     return estimate_object_mask(rec.pixels)
 
 
+def _motif(boxed: list, entries: dict[str, ImageEntry], classifier, *, th: Thresholds,
+           side: int, n_images: int) -> dict | None:
+    """The evidence of the best motif among the crops around ``(image, box)`` pairs (None:
+    no cluster of near-alike crops covers ``motif_coverage`` of ``n_images``)."""
+    recs = _records([entries[im.path] for im, _ in boxed], classifier)
+    crops, paths = [], []
+    for im, box in boxed:
+        rec = recs.get(im.path)
+        if rec is not None and box is not None:
+            crops.append(cut_crop(rec.pixels, box, index=len(crops), min_side=side))
+            paths.append(im.path)
+    motifs = find_motifs(crops, n_images=n_images, min_coverage=th.motif_coverage) if crops else []
+    if not motifs:
+        return None
+    motif = max(motifs, key=lambda m: (m.coverage, -m.cohesion))
+    return {"statistic": "motif_coverage", "value": motif.coverage,
+            "threshold": th.motif_coverage, "spread": motif.spread,
+            "cohesion": motif.cohesion, "medoid": paths[motif.medoid],
+            "medoid_box": crops[motif.medoid].box,
+            "member_paths": [paths[i] for i in motif.members],
+            "member_boxes": [list(b) for b in motif.boxes], "images": n_images}
+
+
 def add_motif_findings(findings: list[Finding], classes: list[ClassSummary],
                        images: list[ImageSummary], entries: dict[str, ImageEntry], classifier, *,
                        thresholds: Thresholds, plan, max_examples: int = 8) -> list[Finding]:
@@ -81,24 +104,11 @@ def add_motif_findings(findings: list[Finding], classes: list[ClassSummary],
                        key=lambda im: im.path)
         if len(small) < 3:
             continue
-        recs = _records([entries[im.path] for im in small], classifier)
-        crops, paths = [], []
-        for im in small:
-            rec = recs.get(im.path)
-            if rec is None or im.decisive_box is None:
-                continue
-            crops.append(cut_crop(rec.pixels, im.decisive_box, index=len(crops), min_side=side))
-            paths.append(im.path)
-        motifs = find_motifs(crops, n_images=cls.correct, min_coverage=th.motif_coverage)
-        if not motifs:
+        evidence = _motif([(im, im.decisive_box) for im in small], entries, classifier,
+                          th=th, side=side, n_images=cls.correct)
+        if evidence is None:
             continue
-        motif = max(motifs, key=lambda m: (m.coverage, -m.cohesion))
-        member_paths = [paths[i] for i in motif.members]
-        evidence = {"statistic": "motif_coverage", "value": motif.coverage,
-                    "threshold": th.motif_coverage, "spread": motif.spread,
-                    "cohesion": motif.cohesion, "medoid": paths[motif.medoid],
-                    "medoid_box": crops[motif.medoid].box, "member_paths": member_paths,
-                    "member_boxes": [list(b) for b in motif.boxes], "images": cls.correct}
+        member_paths = evidence["member_paths"]
         fixed = next((f for f in out if f.class_index == cls.index and f.kind == "fixed-position"), None)
         if fixed is not None:
             i = out.index(fixed)
@@ -149,25 +159,12 @@ def _small_things_in_backgrounds(findings: list[Finding], classes: list[ClassSum
                        and im.peak_on_object < th.object_share], key=lambda im: im.path)
         if len(mine) < 3:
             continue
-        recs = _records([entries[im.path] for im in mine], classifier)
-        crops, paths = [], []
-        for im in mine:
-            rec = recs.get(im.path)
-            if rec is not None:
-                crops.append(cut_crop(rec.pixels, im.peak_box, index=len(crops), min_side=side))
-                paths.append(im.path)
-        motifs = find_motifs(crops, n_images=cls.correct, min_coverage=th.motif_coverage) if crops else []
-        if not motifs:
+        evidence = _motif([(im, im.peak_box) for im in mine], entries, classifier,
+                          th=th, side=side, n_images=cls.correct)
+        if evidence is None:
             continue
-        motif = max(motifs, key=lambda m: (m.coverage, -m.cohesion))
-        member_paths = [paths[i] for i in motif.members]
-        evidence = {"statistic": "motif_coverage", "value": motif.coverage,
-                    "threshold": th.motif_coverage, "spread": motif.spread,
-                    "cohesion": motif.cohesion, "medoid": paths[motif.medoid],
-                    "medoid_box": crops[motif.medoid].box, "member_paths": member_paths,
-                    "member_boxes": [list(b) for b in motif.boxes], "images": cls.correct,
-                    "found_in": "heat peaks off the object",
-                    "examples": member_paths[:max_examples]}
+        evidence.update(found_in="heat peaks off the object",
+                        examples=evidence["member_paths"][:max_examples])
         out[out.index(f)] = dataclasses.replace(f, evidence=dict(f.evidence, motif_candidate=evidence))
     return out
 

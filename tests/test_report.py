@@ -355,3 +355,14 @@ def test_background_sentence_states_no_reliance_the_empty_scene_rate_explains():
     assert "may read the surroundings" not in text
     text = finding_sentence(own)
     assert "may read the surroundings" in text and "(against 10% of other classes' images" in text
+
+
+def test_render_report_shows_notes_and_classes_not_judged():
+    audit = hand_made_audit()
+    audit["classes"][1]["notes"] = ["decisions hinge on a small part of the object itself"]
+    audit["classes"][1]["not_judged"] = ["only 1 correctly predicted image (the rules need 5, min_correct_images)"]
+    body = " ".join(parse(render_report(audit, {})).text)
+    assert "Noted: bowl" in " ".join(body.split())
+    assert "note: decisions hinge on a small part of the object itself" in body
+    assert "Not judged:" in body and "not judged: only 1 correctly predicted image" in body
+    assert "A class the rules could not judge is not a clean class." in body

@@ -603,6 +603,7 @@ def render_report(audit: dict, figures: dict[str, bytes], *, timestamp: str | No
         "statuses": statuses,
         "flagged_classes": sum(1 for c in class_views if c["findings"]),
         "unjudged_classes": [c for c in class_views if c["not_judged"]],
+        "noted_classes": [c for c in class_views if c["notes"] and not c["findings"]],
         "classes": class_views,
         "class_means": _uri(figures, "class-means"),
         "curves": _uri(figures, "curves"),
