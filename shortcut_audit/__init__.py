@@ -4,8 +4,13 @@ The Python API matches the command line::
 
     import shortcut_audit as sa
     result = sa.audit("photos/", "model.onnx", out="audit/")   # shortcut-audit audit
+    sa.write_scan_report(result, "audit/")                      # figures/ and report.html
     for finding in result.findings:
         print(finding.id, finding.class_name, finding.kind, finding.status)
+
+The computation returns its result (and keeps audit.json, compare.json, heatmap.json);
+the figures and pages are written by the ``write_*`` functions of report/, which the
+command line calls.
 
 See DESIGN.md for the stages and audit.json.
 """
@@ -19,11 +24,27 @@ from .findings import Finding, Thresholds
 from .compare import CompareResult, compare
 from .heatmap import run_heatmap
 from .pack import make_pack
-from .report import render_report, write_scan_report
+from .report import render_report, write_compare_page, write_heatmap_files, write_scan_report
 from .model import Classifier, ModelConfig, OnnxClassifier, read_model_config
 from .occlusion import Fill, GridPlan, RandomPatchPlan, SmoothMaskPlan
 from .scan import AuditResult, ScanSettings, audit
 from .sensitivity import Heatmap, ImageStats, occlusion_heatmap
+from .heatmap import HeatmapResult
+
+
+def _notebook_view(name: str):
+    """A ``_repr_html_`` that draws with report/notebook.py when Jupyter asks (the result
+    classes live in computing modules, which never import report/)."""
+    def _repr_html_(self) -> str:
+        from .report import notebook
+        return getattr(notebook, name)(self)
+    _repr_html_.__name__ = "_repr_html_"
+    return _repr_html_
+
+
+AuditResult._repr_html_ = _notebook_view("audit_html")
+CompareResult._repr_html_ = _notebook_view("compare_html")
+HeatmapResult._repr_html_ = _notebook_view("heatmap_html")
 
 __all__ = [
     "__version__",
@@ -38,5 +59,6 @@ __all__ = [
     # the audit
     "ScanSettings", "AuditResult", "Finding", "Thresholds", "audit",
     # what people read
-    "render_report", "write_scan_report", "make_pack", "compare", "CompareResult",
+    "render_report", "write_scan_report", "write_compare_page", "write_heatmap_files",
+    "make_pack", "compare", "CompareResult", "HeatmapResult",
 ]

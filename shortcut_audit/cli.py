@@ -394,11 +394,13 @@ def heatmap(
       shortcut-audit heatmap photo.png -m model.onnx -o hm/ --plan rise --count 2000
     """
     from .heatmap import run_heatmap
+    from .report import write_heatmap_files
 
     with _Bar("heatmap") as bar:
         result = run_heatmap(image, model, out=out_dir, model_config=cfg, plan=occ.plan,
                              fill=occ.fill, target=target, score=occ.score, tolerance=occ.tolerance,
                              progress=bar)
+    write_heatmap_files(result, out_dir)
     out.print(f"class [bold]{result['target']}[/] score {result['base_score']:.3f}; "
               f"{result['passes']} passes in {result['elapsed_seconds']:.2f} s")
     out.print(f"wrote {out_dir / 'overlay.png'}", highlight=False)
@@ -459,15 +461,19 @@ def audit(
         with _Bar("audit") as bar:
             result = run_audit(images, model, out=out_dir, masks=masks, manifest=manifest,
                               model_config=cfg, settings=settings, estimate_masks=not no_estimate,
-                              progress=bar, report=not no_report, cluster=cluster)
+                              progress=bar, cluster=cluster)
     except KeyboardInterrupt:
         kept = len(list((out_dir / "results").glob("*.npz"))) if (out_dir / "results").exists() else 0
         err.print(f"interrupted: the results of {kept} images are kept in {out_dir / 'results'}; "
                   f"run the same command again to resume.", highlight=False)
         raise typer.Exit(code=130)
+    page = None
+    if not no_report:
+        from .report import write_scan_report
+        page = write_scan_report(result, out_dir)
     print_summary(result)
-    if not no_report and (out_dir / "report.html").exists():
-        out.print(f"report: {out_dir / 'report.html'}", highlight=False)
+    if page is not None:
+        out.print(f"report: {page}", highlight=False)
     out.print(f"audit:  {out_dir / 'audit.json'}", highlight=False)
     if result.dataset["audited"] == 0:
         # Nothing audited proves nothing: a launch gate must not pass on it.
@@ -535,8 +541,11 @@ def compare(
                              before_config=before_config, after_config=after_config, masks=masks,
                              manifest=manifest, settings=settings, before_audit=before_audit,
                              after_audit=after_audit, seed=occ.seed, resamples=resamples, progress=bar)
+    from .report import write_compare_page
+
+    page = write_compare_page(result, out_dir)
     print_comparison(result)
-    out.print(f"report: {out_dir / 'compare.html'}", highlight=False)
+    out.print(f"report: {page}", highlight=False)
     code = result.exit_code(fail_on.value)
     if code:
         raise typer.Exit(code=code)

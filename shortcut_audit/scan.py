@@ -4,7 +4,8 @@
 batching engine (heatmap, decisive area, deletion and insertion curves, mask tests),
 keeps each image's results in the store as soon as they exist, then aggregates per
 class, applies the finding rules, looks for recurring motifs, runs the counterfactual
-tests, and writes audit.json (and, through report/, the figures and the report).
+tests, and writes audit.json. The figures and report.html are the caller's to write
+(``shortcut_audit.report.write_scan_report``; the command line does it).
 
 An interrupted scan keeps every finished image; the same command resumes it and gives
 the same audit.json.
@@ -113,10 +114,6 @@ class AuditResult:
             "skipped": [{"path": s.path, "reason": s.reason} for s in self.skipped],
             "run": self.run,
         }
-
-    def _repr_html_(self) -> str:          # Jupyter; matplotlib is imported only here
-        from .report.notebook import audit_html
-        return audit_html(self)
 
     def at_or_above(self, gate: str) -> list[Finding]:
         """Findings at or above ``gate`` (``suspect`` < ``confirmed``; ``never`` = none)."""
@@ -238,7 +235,6 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
          settings: ScanSettings | None = None,
          estimate_masks: bool = True,
          progress: Callable[[dict], None] | None = None,
-         report: bool = True,
          cluster: str | None = None) -> AuditResult:
     """Audit a labelled image set.
 
@@ -248,8 +244,9 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
         The dataset root (one folder per class, or the root a ``manifest`` is relative to).
     model : path or OnnxClassifier
     out : path, optional
-        Output folder: audit.json, figures/, report.html and the per-image store
-        ``results/``. Without it nothing is written and nothing resumes.
+        Output folder: audit.json and the per-image store ``results/``. Without it
+        nothing is written and nothing resumes. Write figures/ and report.html into it
+        with :func:`shortcut_audit.report.write_scan_report`.
     masks : path, optional
         A folder of object masks mirroring the image tree.
     manifest : path, optional
@@ -261,8 +258,6 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
         Estimate object masks on plain backdrops where none is given.
     progress : callable, optional
         Called with ``{"done", "total", "passes", "passes_per_second", "phase"}``.
-    report : bool
-        Write figures and report.html into ``out``.
     cluster : str, optional
         Run the per-image half on Dask: a scheduler address (``tcp://host:8786``) or
         ``local:N`` worker processes (cluster.py; needs the ``cluster`` extra).
@@ -412,9 +407,6 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
         out=out_dir)
     if out_dir is not None:
         write_json(out_dir / "audit.json", result.to_dict())
-        if report:
-            from .report import write_scan_report
-            write_scan_report(result, out_dir)
     return result
 
 
