@@ -22,14 +22,11 @@ from .engine import PassEngine
 from .errors import AuditError, ClusterError, DataError, ImageSkip, ModelError, OutputError, UsageError
 from .findings import Finding, Thresholds
 from .compare import CompareResult, compare
-from .heatmap import run_heatmap
-from .pack import make_pack
-from .report import render_report, write_compare_page, write_heatmap_files, write_scan_report
+from .heatmap import HeatmapResult, run_heatmap
 from .model import Classifier, ModelConfig, OnnxClassifier, read_model_config
 from .occlusion import Fill, GridPlan, RandomPatchPlan, SmoothMaskPlan
 from .scan import AuditResult, ScanSettings, audit
 from .sensitivity import Heatmap, ImageStats, occlusion_heatmap
-from .heatmap import HeatmapResult
 
 
 def _notebook_view(name: str):
@@ -40,6 +37,24 @@ def _notebook_view(name: str):
         return getattr(notebook, name)(self)
     _repr_html_.__name__ = "_repr_html_"
     return _repr_html_
+
+
+#: Names served from report/ and pack.py on first use: importing the package imports
+#: neither matplotlib nor jinja2 (``from shortcut_audit import write_scan_report`` works).
+_WRITERS = {"render_report": "report", "write_scan_report": "report", "write_compare_page": "report",
+            "write_heatmap_files": "report", "make_pack": "pack"}
+
+
+def __getattr__(name: str):
+    if name in _WRITERS:
+        import importlib
+
+        return getattr(importlib.import_module(f".{_WRITERS[name]}", __name__), name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_WRITERS))
 
 
 AuditResult._repr_html_ = _notebook_view("audit_html")

@@ -132,6 +132,18 @@ def test_compare_and_heatmap_show_themselves(audited, monkeypatch):
     assert [HOSTILE[0]] in [r[1:] for r in page.rows if r and r[0] == "target"]
 
 
+def test_importing_the_package_imports_no_plotting_or_front_end():
+    # report/ (matplotlib, jinja2) and pack.py load on first use of their names.
+    code = ("import sys, shortcut_audit\n"
+            "print(sorted(m for m in ('matplotlib', 'jinja2', 'typer', 'rich', 'shortcut_audit.report',"
+            " 'shortcut_audit.pack') if m in sys.modules))\n"
+            "from shortcut_audit import write_scan_report\n"
+            "print(write_scan_report.__module__, 'matplotlib' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
+                         cwd=Path(__file__).resolve().parents[1])
+    assert out.stdout.splitlines() == ["[]", "shortcut_audit.report.scan_page True"]
+
+
 def test_importing_the_package_does_not_import_the_notebook_module():
     code = ("import sys, shortcut_audit; "
             "print('shortcut_audit.report.notebook' in sys.modules)")
