@@ -15,7 +15,7 @@ command line calls.
 See DESIGN.md for the stages and audit.json.
 """
 
-__version__ = "0.1.0"
+from ._version import __version__
 
 from .dataset import ImageEntry, ImageRecord, Skip, class_names, list_images, load_image
 from .engine import PassEngine

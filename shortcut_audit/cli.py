@@ -27,7 +27,7 @@ from rich.progress import (BarColumn, MofNCompleteColumn, Progress, TextColumn,
                            TimeElapsedColumn, TimeRemainingColumn)
 from rich.table import Table
 
-from . import __version__
+from ._version import __version__
 from .errors import AuditError, UsageError
 from .findings import Thresholds, parse_threshold_overrides, read_thresholds
 from .model import ModelConfig, parse_numbers, parse_size, read_labels, read_model_config

@@ -46,7 +46,7 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
-from . import __version__
+from ._version import __version__
 from .classes import BOX_MAX_AREA, SMALL_AREA, place_map
 from .errors import UsageError
 from .sensitivity import box_of
