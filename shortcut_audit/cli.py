@@ -11,8 +11,6 @@ from __future__ import annotations
 import functools
 import inspect
 import json
-import sys
-import time
 import typing
 import warnings
 from dataclasses import dataclass
@@ -27,11 +25,13 @@ from rich.progress import (BarColumn, MofNCompleteColumn, Progress, TextColumn,
                            TimeElapsedColumn, TimeRemainingColumn)
 from rich.table import Table
 
-from ._version import __version__
+from .compare import FAIL_ON as COMPARE_FAIL_ON
+from .engine import SCORES
 from .errors import AuditError, UsageError
-from .findings import Thresholds, parse_threshold_overrides, read_thresholds
-from .model import ModelConfig, parse_numbers, parse_size, read_labels, read_model_config
-from .occlusion import Fill, GridPlan, RandomPatchPlan, SmoothMaskPlan
+from .findings import FAIL_ON, Thresholds, parse_threshold_overrides, read_thresholds
+from .model import (COLORS, LAYOUTS, OUTPUT_KINDS, RESIZES, ModelConfig, parse_numbers, parse_size, read_labels,
+                    read_model_config)
+from .occlusion import FILL_KINDS, PLAN_KINDS, Fill, GridPlan, RandomPatchPlan, SmoothMaskPlan
 
 app = typer.Typer(
     name="shortcut-audit",
@@ -45,61 +45,21 @@ err = Console(stderr=True)
 out = Console()
 
 
-class Layout(str, Enum):
-    nchw = "nchw"
-    nhwc = "nhwc"
+def _choices(name: str, values: tuple[str, ...]) -> type[Enum]:
+    """A typer choice type made from the library's own tuple: one list to keep."""
+    return Enum(name, [(v, v) for v in values], type=str)
 
 
-class Channels(str, Enum):
-    rgb = "rgb"
-    bgr = "bgr"
-    gray = "gray"
+Layout = _choices("Layout", LAYOUTS)
+Channels = _choices("Channels", COLORS)
+Resize = _choices("Resize", RESIZES)
+OutputKind = _choices("OutputKind", OUTPUT_KINDS)
+PlanKind = _choices("PlanKind", PLAN_KINDS)
+FillKind = _choices("FillKind", FILL_KINDS)
+Score = _choices("Score", SCORES)
+ScanGate = _choices("ScanGate", FAIL_ON)
+CompareGate = _choices("CompareGate", COMPARE_FAIL_ON)
 
-
-class Resize(str, Enum):
-    stretch = "stretch"
-    crop = "crop"
-    pad = "pad"
-
-
-class OutputKind(str, Enum):
-    probs = "probs"
-    logits = "logits"
-    sigmoid = "sigmoid"
-
-
-class PlanKind(str, Enum):
-    grid = "grid"
-    random = "random"
-    rise = "rise"
-    adaptive = "adaptive"
-
-
-class FillKind(str, Enum):
-    mean = "mean"
-    blur = "blur"
-    constant = "constant"
-    noise = "noise"
-
-
-class Score(str, Enum):
-    prob = "prob"
-    logit = "logit"
-
-
-class ScanGate(str, Enum):
-    suspect = "suspect"
-    confirmed = "confirmed"
-    never = "never"
-
-
-class CompareGate(str, Enum):
-    new = "new"
-    persists = "persists"
-    never = "never"
-
-
-# ----------------------------------------------------------------- shared options
 
 MODEL_HELP = "Model options"
 PLAN_HELP = "Occlusion options"

@@ -17,9 +17,9 @@ import numpy as np
 
 from .dataset import load_image
 from .engine import PassEngine
-from .errors import ImageSkip, UsageError
+from .errors import UsageError
 from .model import ModelConfig, OnnxClassifier
-from .occlusion import Fill, GridPlan, Plan, pass_count
+from .occlusion import Fill, Plan, pass_count
 from .scan import DEFAULT_FILL, DEFAULT_PLAN
 from .sensitivity import heatmap_job
 from .store import write_bytes_atomic, write_json

@@ -27,9 +27,9 @@ from ._version import __version__
 from .confirm import add_motif_findings, confirm_findings
 from .classes import ClassAccumulator, ClassSummary, ImageSummary, summarise_classes
 from .dataset import ImageEntry, Skip, class_names, list_images
-from .engine import PassEngine, make_scorer
+from .engine import SCORES, PassEngine, make_scorer
 from .errors import DataError, UsageError
-from .findings import Finding, Thresholds, judge, not_judged, object_part_note
+from .findings import FAIL_ON, Finding, Thresholds, judge, not_judged, object_part_note
 from .model import ModelConfig, OnnxClassifier
 from .occlusion import Fill, GridPlan, Plan, RandomPatchPlan, SmoothMaskPlan
 from .perimage import analyse_entries
@@ -61,8 +61,8 @@ class ScanSettings:
         if self.tolerance is not None and not isinstance(self.plan, (RandomPatchPlan, SmoothMaskPlan)):
             raise UsageError("--tolerance applies to --plan random or rise; leave it out for a grid "
                              "or adaptive plan.")
-        if self.score not in ("prob", "logit"):
-            raise UsageError(f"--score must be prob or logit; got {self.score!r}.")
+        if self.score not in SCORES:
+            raise UsageError(f"--score must be {' or '.join(SCORES)}; got {self.score!r}.")
         if not isinstance(self.seed, int) or isinstance(self.seed, bool):
             raise UsageError(f"--seed must be a whole number; got {self.seed!r}.")
         if not isinstance(self.test_budget, int) or self.test_budget < 4:
@@ -123,7 +123,7 @@ class AuditResult:
             return [f for f in self.findings if f.status in ("suspect", "confirmed")]
         if gate == "confirmed":
             return [f for f in self.findings if f.status == "confirmed"]
-        raise UsageError(f"--fail-on must be suspect, confirmed or never; got {gate!r}.")
+        raise UsageError(f"--fail-on must be one of {', '.join(FAIL_ON)}; got {gate!r}.")
 
 
 def _label_key(name: str) -> str:
