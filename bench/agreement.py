@@ -222,8 +222,7 @@ def run_audit(s: AuditSet, plan, out: Path, *, batch: int, threads: int = 1):
         cfg = cfg.merged_over(s.config)
     settings = ScanSettings(plan=plan)
     t0 = time.perf_counter()
-    result = _scan_fn()(s.images, s.model, out=out, masks=s.masks, model_config=cfg, settings=settings,
-                        report=False)
+    result = _scan_fn()(s.images, s.model, out=out, masks=s.masks, model_config=cfg, settings=settings)
     return result, time.perf_counter() - t0
 
 

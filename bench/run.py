@@ -205,7 +205,7 @@ def scan_rate(clf, images: Path) -> tuple[float, int]:
     from shortcut_audit.scan import ScanSettings, audit
 
     seen = []
-    result = audit(images, clf, settings=ScanSettings(), report=False,
+    result = audit(images, clf, settings=ScanSettings(),
                   progress=lambda p: p["phase"] == "images" and seen.append(p["passes_per_second"]))
     return seen[-1], result.run["passes_this_run"]
 
@@ -317,7 +317,10 @@ def memory_child(args) -> None:
             Path("/proc/self/clear_refs").write_text("5")
         except OSError:
             pass
-        result = audit(images, args.model, out=out, model_config=config, settings=settings, report=bool(report))
+        result = audit(images, args.model, out=out, model_config=config, settings=settings)
+        if report and out is not None:         # as the command line does after the audit
+            from shortcut_audit.report import write_scan_report
+            write_scan_report(result, out)
         print(json.dumps({"vmhwm_kb": _status("VmHWM"), "rss_before_kb": before,
                           "images": len(result.images), "passes": result.run["passes_this_run"]}), flush=True)
 
@@ -554,7 +557,7 @@ def markdown(res: dict) -> str:
               f"| per-image results | {small} images | {large} images | ratio | growth per image |",
               "| --- | --- | --- | --- | --- |"]
     for mode, label in (("store", "on disk, report written (`--out`, as the CLI runs)"),
-                        ("store_no_report", "on disk, no report (`report=False`)"),
+                        ("store_no_report", "on disk, no report (no `write_scan_report`)"),
                         ("in_memory", "in memory (`out=None`)")):
         r = mem[mode]
         lines.append(f"| {label} | {r[small]['vmhwm_kb'] / 1024:.1f} MB | {r[large]['vmhwm_kb'] / 1024:.1f} MB | "

@@ -26,7 +26,7 @@ and Papakonstantinou (SIGMOD 2019):
    exhaustive heatmap's units, resolution and smoothing, and equals it where every
    covering patch was run.
 
-The job returns a :class:`~shortcut_audit.sensitivity.Heatmap`, so it stands wherever
+The job returns a :class:`~shortcut_audit.maps.Heatmap`, so it stands wherever
 ``heatmap_job`` does; ``heatmap_job`` hands an adaptive plan to :func:`adaptive_job`.
 This module is pure: arrays in, arrays out.
 
@@ -51,7 +51,7 @@ from scipy import ndimage
 from .engine import Job
 from .errors import UsageError
 from .occlusion import AdaptivePlan, Fill, fill_image, paste_boxes, patch_boxes
-from .sensitivity import Heatmap, _check_finite, _check_image
+from .maps import Heatmap, check_finite as _check_finite, check_image as _check_image
 
 __all__ = ["AdaptivePlan", "AdaptiveLayout", "adaptive_layout", "adaptive_job",
            "coarse_density", "predict_drops", "grid_heatmap"]
@@ -279,7 +279,7 @@ def _refine(image, filled, lay: AdaptiveLayout, coarse_drops, base_score, t, tol
 
 def adaptive_job(image: np.ndarray, *, plan: AdaptivePlan, fill: Fill, target: int | None = None,
                  chunk: int = 64) -> Job:
-    """A job that returns the adaptive :class:`~shortcut_audit.sensitivity.Heatmap` of ``image``.
+    """A job that returns the adaptive :class:`~shortcut_audit.maps.Heatmap` of ``image``.
 
     Parameters
     ----------

@@ -11,8 +11,6 @@ from __future__ import annotations
 import functools
 import inspect
 import json
-import sys
-import time
 import typing
 import warnings
 from dataclasses import dataclass
@@ -27,11 +25,13 @@ from rich.progress import (BarColumn, MofNCompleteColumn, Progress, TextColumn,
                            TimeElapsedColumn, TimeRemainingColumn)
 from rich.table import Table
 
-from . import __version__
+from .compare import FAIL_ON as COMPARE_FAIL_ON
+from .engine import SCORES
 from .errors import AuditError, UsageError
-from .findings import Thresholds, parse_threshold_overrides, read_thresholds
-from .model import ModelConfig, parse_numbers, parse_size, read_labels, read_model_config
-from .occlusion import Fill, GridPlan, RandomPatchPlan, SmoothMaskPlan
+from .findings import FAIL_ON, Thresholds, parse_threshold_overrides, read_thresholds
+from .model import (COLORS, LAYOUTS, OUTPUT_KINDS, RESIZES, ModelConfig, parse_numbers, parse_size, read_labels,
+                    read_model_config)
+from .occlusion import FILL_KINDS, PLAN_KINDS, Fill, GridPlan, RandomPatchPlan, SmoothMaskPlan
 
 app = typer.Typer(
     name="shortcut-audit",
@@ -45,61 +45,21 @@ err = Console(stderr=True)
 out = Console()
 
 
-class Layout(str, Enum):
-    nchw = "nchw"
-    nhwc = "nhwc"
+def _choices(name: str, values: tuple[str, ...]) -> type[Enum]:
+    """A typer choice type made from the library's own tuple: one list to keep."""
+    return Enum(name, [(v, v) for v in values], type=str)
 
 
-class Channels(str, Enum):
-    rgb = "rgb"
-    bgr = "bgr"
-    gray = "gray"
+Layout = _choices("Layout", LAYOUTS)
+Channels = _choices("Channels", COLORS)
+Resize = _choices("Resize", RESIZES)
+OutputKind = _choices("OutputKind", OUTPUT_KINDS)
+PlanKind = _choices("PlanKind", PLAN_KINDS)
+FillKind = _choices("FillKind", FILL_KINDS)
+Score = _choices("Score", SCORES)
+ScanGate = _choices("ScanGate", FAIL_ON)
+CompareGate = _choices("CompareGate", COMPARE_FAIL_ON)
 
-
-class Resize(str, Enum):
-    stretch = "stretch"
-    crop = "crop"
-    pad = "pad"
-
-
-class OutputKind(str, Enum):
-    probs = "probs"
-    logits = "logits"
-    sigmoid = "sigmoid"
-
-
-class PlanKind(str, Enum):
-    grid = "grid"
-    random = "random"
-    rise = "rise"
-    adaptive = "adaptive"
-
-
-class FillKind(str, Enum):
-    mean = "mean"
-    blur = "blur"
-    constant = "constant"
-    noise = "noise"
-
-
-class Score(str, Enum):
-    prob = "prob"
-    logit = "logit"
-
-
-class ScanGate(str, Enum):
-    suspect = "suspect"
-    confirmed = "confirmed"
-    never = "never"
-
-
-class CompareGate(str, Enum):
-    new = "new"
-    persists = "persists"
-    never = "never"
-
-
-# ----------------------------------------------------------------- shared options
 
 MODEL_HELP = "Model options"
 PLAN_HELP = "Occlusion options"
@@ -394,11 +354,13 @@ def heatmap(
       shortcut-audit heatmap photo.png -m model.onnx -o hm/ --plan rise --count 2000
     """
     from .heatmap import run_heatmap
+    from .report import write_heatmap_files
 
     with _Bar("heatmap") as bar:
         result = run_heatmap(image, model, out=out_dir, model_config=cfg, plan=occ.plan,
                              fill=occ.fill, target=target, score=occ.score, tolerance=occ.tolerance,
                              progress=bar)
+    write_heatmap_files(result, out_dir)
     out.print(f"class [bold]{result['target']}[/] score {result['base_score']:.3f}; "
               f"{result['passes']} passes in {result['elapsed_seconds']:.2f} s")
     out.print(f"wrote {out_dir / 'overlay.png'}", highlight=False)
@@ -459,15 +421,19 @@ def audit(
         with _Bar("audit") as bar:
             result = run_audit(images, model, out=out_dir, masks=masks, manifest=manifest,
                               model_config=cfg, settings=settings, estimate_masks=not no_estimate,
-                              progress=bar, report=not no_report, cluster=cluster)
+                              progress=bar, cluster=cluster)
     except KeyboardInterrupt:
         kept = len(list((out_dir / "results").glob("*.npz"))) if (out_dir / "results").exists() else 0
         err.print(f"interrupted: the results of {kept} images are kept in {out_dir / 'results'}; "
                   f"run the same command again to resume.", highlight=False)
         raise typer.Exit(code=130)
+    page = None
+    if not no_report:
+        from .report import write_scan_report
+        page = write_scan_report(result, out_dir)
     print_summary(result)
-    if not no_report and (out_dir / "report.html").exists():
-        out.print(f"report: {out_dir / 'report.html'}", highlight=False)
+    if page is not None:
+        out.print(f"report: {page}", highlight=False)
     out.print(f"audit:  {out_dir / 'audit.json'}", highlight=False)
     if result.dataset["audited"] == 0:
         # Nothing audited proves nothing: a launch gate must not pass on it.
@@ -535,8 +501,11 @@ def compare(
                              before_config=before_config, after_config=after_config, masks=masks,
                              manifest=manifest, settings=settings, before_audit=before_audit,
                              after_audit=after_audit, seed=occ.seed, resamples=resamples, progress=bar)
+    from .report import write_compare_page
+
+    page = write_compare_page(result, out_dir)
     print_comparison(result)
-    out.print(f"report: {out_dir / 'compare.html'}", highlight=False)
+    out.print(f"report: {page}", highlight=False)
     code = result.exit_code(fail_on.value)
     if code:
         raise typer.Exit(code=code)

@@ -1,7 +1,7 @@
 """Distributed scans on Dask: the per-image half of a scan, spread over a cluster.
 
 A scan has two halves. The per-image half (decode, occlusion passes, statistics:
-:func:`shortcut_audit.scan.analyse_entries`) is independent from image to image and
+:func:`shortcut_audit.perimage.analyse_entries`) is independent from image to image and
 takes nearly all the time; the rest (per-class aggregation, findings, counterfactual
 tests, the report) needs every image's results. :func:`iter_cluster_results` runs the
 first half on a `Dask <https://distributed.dask.org>`_ cluster and hands the results
@@ -236,8 +236,8 @@ def _analyse_shard(entries: Sequence[ImageEntry], job: _ShardJob) -> list[tuple[
     model is missing or different here, another tool version): retrying would not help.
     Any other exception propagates, so Dask retries the task.
     """
-    from . import __version__
-    from .scan import analyse_entries
+    from ._version import __version__
+    from .perimage import analyse_entries
 
     try:
         if job.tool_version != __version__:
@@ -327,7 +327,7 @@ def iter_cluster_results(
 ) -> Iterator[tuple[str, dict, dict]]:
     """Yield ``(path, record, arrays)`` for each entry, computed on a Dask cluster.
 
-    The cluster counterpart of :func:`shortcut_audit.scan.analyse_entries`: the same
+    The cluster counterpart of :func:`shortcut_audit.perimage.analyse_entries`: the same
     triples (``record`` JSON-able, with ``"skipped"`` for an image that could not be
     analysed; ``arrays`` with the heatmap, the decisive crop and the mask), one per
     entry, in the order shards finish. The caller stores and aggregates them.
@@ -400,7 +400,7 @@ def _run(entries, model_path, model_config, settings, *, label_index, estimate_m
          shard_size, retries, stats, on_done, distributed, connect_timeout, worker_timeout):
     if not entries:
         return
-    from . import __version__
+    from ._version import __version__
 
     path = Path(model_path).absolute()
     if sha256 is None:

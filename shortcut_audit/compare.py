@@ -46,7 +46,7 @@ from typing import Callable, Sequence
 
 import numpy as np
 
-from . import __version__
+from ._version import __version__
 from .classes import BOX_MAX_AREA, SMALL_AREA, place_map
 from .errors import UsageError
 from .intervals import (CONFIDENCE, NEGLIGIBLE, Interval, _stat,  # noqa: F401 (re-exported)
@@ -216,10 +216,6 @@ class CompareResult:
 
     def counts(self) -> dict[str, int]:
         return {v: sum(1 for f in self.findings if f.verdict == v) for v in VERDICTS}
-
-    def _repr_html_(self) -> str:          # Jupyter; matplotlib is imported only here
-        from .report.notebook import compare_html
-        return compare_html(self)
 
     def exit_code(self, fail_on: str) -> int:
         """1 when a finding is at or above the gate, else 0.
@@ -675,7 +671,8 @@ def compare(images: str | os.PathLike | None = None, *, before=None, after=None,
         the figures (default: the before audit's dataset root).
     before, after : path or OnnxClassifier, optional
     out : path
-        Output folder: compare.json, compare.html (and before/, after/ when scanning).
+        Output folder: compare.json (and before/, after/ when scanning). Write
+        compare.html into it with :func:`shortcut_audit.report.write_compare_page`.
     model_config : ModelConfig or path of a TOML file, optional
         Model options for both models.
     before_config, after_config : ModelConfig or path of a TOML file, optional
@@ -730,7 +727,7 @@ def compare(images: str | os.PathLike | None = None, *, before=None, after=None,
         sides = {}
         for side, model, cfg in (("before", before, cfg_b), ("after", after, cfg_a)):
             tagged = None if progress is None else (lambda d, s=side: progress(dict(d, side=s)))
-            res = audit(images, model, out=out_dir / side, masks=masks, manifest=manifest, report=False,
+            res = audit(images, model, out=out_dir / side, masks=masks, manifest=manifest,
                        model_config=cfg, settings=settings, progress=tagged)
             sides[side] = res.to_dict()
         bdir, adir = out_dir / "before", out_dir / "after"
@@ -760,7 +757,4 @@ def compare(images: str | os.PathLike | None = None, *, before=None, after=None,
                             image_root=root, mode="models" if models else "audits", notes=notes)
     result = dataclasses.replace(result, out=out_dir)
     write_json(out_dir / "compare.json", result.to_dict())
-    from .report.compare_page import write_compare_page
-
-    write_compare_page(result, out_dir)
     return result

@@ -44,7 +44,11 @@ import numpy as np
 
 from .errors import UsageError
 
-__all__ = ["PassEngine", "Job", "EngineStats", "Request", "NEXT", "AHEAD_DEPTH", "run_job", "make_scorer"]
+__all__ = ["PassEngine", "Job", "EngineStats", "Request", "NEXT", "AHEAD_DEPTH", "SCORES", "run_job",
+           "make_scorer"]
+
+#: The scores a heatmap can map the drop of: probabilities or logits.
+SCORES = ("prob", "logit")
 
 Job = Generator[Any, np.ndarray, Any]
 
@@ -333,7 +337,8 @@ class PassEngine:
 
 
 def make_scorer(classifier, score: str) -> Callable[[np.ndarray], np.ndarray]:
-    """The function an engine calls on pixels: probabilities, or logits when ``score="logit"``."""
+    """The function an engine calls on pixels: probabilities, or logits when ``score="logit"``
+    (one of :data:`SCORES`)."""
     if score == "logit":
         if not hasattr(classifier, "logits"):
             raise UsageError("--score logit needs a classifier with a logits() method.")

@@ -23,6 +23,7 @@ from .classes import SMALL_AREA, ClassSummary, ImageSummary
 from .errors import UsageError
 
 __all__ = [
+    "FAIL_ON",
     "THRESHOLD_TABLE",
     "Thresholds",
     "read_thresholds",
@@ -35,6 +36,8 @@ __all__ = [
 ]
 
 FINDING_KINDS = ("localized", "fixed-position", "recurring-motif", "background")
+#: The gates of ``audit --fail-on``: a finding at least suspect, at least confirmed, or none.
+FAIL_ON = ("suspect", "confirmed", "never")
 
 #: name, default, reason. One place for every threshold of the rules.
 THRESHOLD_TABLE: tuple[tuple[str, float, str], ...] = (

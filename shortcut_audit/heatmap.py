@@ -1,7 +1,13 @@
-"""One image's heatmap, written to a folder: the library side of ``shortcut-audit heatmap``."""
+"""One image's heatmap, written to a folder: the library side of ``shortcut-audit heatmap``.
+
+:func:`run_heatmap` computes the map and writes heatmap.npy and heatmap.json; the
+overlay figure (overlay.png) is the caller's to draw, with
+:func:`shortcut_audit.report.write_heatmap_files` (the command line does it).
+"""
 
 from __future__ import annotations
 
+import io
 import os
 import time
 from pathlib import Path
@@ -11,11 +17,11 @@ import numpy as np
 
 from .dataset import load_image
 from .engine import PassEngine
-from .errors import ImageSkip, UsageError
+from .errors import UsageError
 from .model import ModelConfig, OnnxClassifier
-from .occlusion import Fill, GridPlan, Plan, pass_count
+from .occlusion import Fill, Plan, pass_count
 from .scan import DEFAULT_FILL, DEFAULT_PLAN
-from .sensitivity import heatmap_job, peak_box
+from .sensitivity import heatmap_job
 from .store import write_bytes_atomic, write_json
 
 __all__ = ["HeatmapResult", "run_heatmap"]
@@ -23,13 +29,12 @@ __all__ = ["HeatmapResult", "run_heatmap"]
 
 class HeatmapResult(dict):
     """What :func:`run_heatmap` returns: heatmap.json's content (a dict), plus ``out``,
-    the folder it was written to; it shows its overlay in a notebook."""
+    the folder it was written to, ``values`` (the heatmap, as in heatmap.npy) and
+    ``pixels`` (the image as the model saw it); it shows its overlay in a notebook."""
 
     out: Path | None = None
-
-    def _repr_html_(self) -> str:          # Jupyter; matplotlib is imported only here
-        from .report.notebook import heatmap_html
-        return heatmap_html(self)
+    values: np.ndarray | None = None
+    pixels: np.ndarray | None = None
 
 
 def run_heatmap(image: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *,
@@ -37,14 +42,15 @@ def run_heatmap(image: str | os.PathLike, model: str | os.PathLike | OnnxClassif
                 plan: Plan = DEFAULT_PLAN, fill: Fill = DEFAULT_FILL, target: str | int | None = None,
                 score: str = "prob", tolerance: float | None = None,
                 progress: Callable[[dict], None] | None = None) -> HeatmapResult:
-    """Compute one image's occlusion heatmap and write heatmap.npy, overlay.png, heatmap.json.
+    """Compute one image's occlusion heatmap and write heatmap.npy and heatmap.json.
 
     Parameters
     ----------
     image : path
     model : path or OnnxClassifier
     out : path
-        Folder for the three files (created).
+        Folder for the files (created); overlay.png is written by
+        :func:`shortcut_audit.report.write_heatmap_files`.
     target : str or int, optional
         Class name or index to explain; the model's prediction when omitted.
     tolerance : float, optional
@@ -87,14 +93,10 @@ def run_heatmap(image: str | os.PathLike, model: str | os.PathLike | OnnxClassif
         raise hm
     elapsed = time.perf_counter() - t0
     out_dir = Path(out)
-    from .report.figures import heatmap_overlay_png
-    buf = __import__("io").BytesIO()
+    buf = io.BytesIO()
     np.save(buf, hm.values.astype(np.float32))
     write_bytes_atomic(out_dir / "heatmap.npy", buf.getvalue())
     label = clf.labels[hm.target]
-    write_bytes_atomic(out_dir / "overlay.png", heatmap_overlay_png(
-        pixels, hm.values, title=f"{Path(image).name}: {label} ({hm.base_score:.3f})",
-        box=peak_box(hm.values)))
     info = {"image": str(image), "model": clf.path.name, "model_sha256": clf.sha256,
             "target": label, "target_index": hm.target, "predicted": clf.labels[hm.predicted],
             "base_score": hm.base_score, "score": score, "plan": plan.to_dict(), "fill": fill.to_dict(),
@@ -104,4 +106,6 @@ def run_heatmap(image: str | os.PathLike, model: str | os.PathLike | OnnxClassif
     write_json(out_dir / "heatmap.json", info)
     result = HeatmapResult(info)
     result.out = out_dir
+    result.values = hm.values
+    result.pixels = pixels
     return result

@@ -33,6 +33,7 @@ __all__ = [
     "Plan",
     "Fill",
     "FILL_KINDS",
+    "PLAN_KINDS",
     "plan_from_dict",
     "fill_from_dict",
     "patch_boxes",
@@ -240,6 +241,8 @@ class AdaptivePlan:
 Plan = Union[GridPlan, RandomPatchPlan, SmoothMaskPlan, AdaptivePlan]
 
 FILL_KINDS = ("constant", "mean", "blur", "noise")
+#: The plans' ``kind`` names, as in ``to_dict()`` and ``--plan``.
+PLAN_KINDS = ("grid", "random", "rise", "adaptive")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -283,8 +286,7 @@ def plan_from_dict(data: dict) -> Plan:
     """The plan described by ``to_dict()`` output (as stored in audit.json)."""
     data = dict(data)
     kind = data.pop("kind", None)
-    classes = {"grid": GridPlan, "random": RandomPatchPlan, "rise": SmoothMaskPlan,
-               "adaptive": AdaptivePlan}
+    classes = dict(zip(PLAN_KINDS, (GridPlan, RandomPatchPlan, SmoothMaskPlan, AdaptivePlan)))
     if kind not in classes:
         raise UsageError(f"plan kind must be one of {', '.join(classes)}; got {kind!r}.")
     return classes[kind](**data)

@@ -493,7 +493,7 @@ def _transplant(src_px, tgt_px, regions, plan, suspect, placement, h, w, request
     n_used, n = (0 if known is not None else len(used)), len(plan)
     base = known[used] if known is not None else scores[:n_used]
     after, ctrl = scores[n_used:n_used + n], scores[n_used + n:]
-    keep, hits, gains, c_hits, c_gains, rows = [], [], [], [], [], []
+    hits, gains, c_hits, c_gains, rows = [], [], [], [], []
     ineligible = invalid = 0
     for i, (s, t, _p, _c) in enumerate(plan):
         b = base[row_of[t]]

@@ -4,7 +4,8 @@
 batching engine (heatmap, decisive area, deletion and insertion curves, mask tests),
 keeps each image's results in the store as soon as they exist, then aggregates per
 class, applies the finding rules, looks for recurring motifs, runs the counterfactual
-tests, and writes audit.json (and, through report/, the figures and the report).
+tests, and writes audit.json. The figures and report.html are the caller's to write
+(``shortcut_audit.report.write_scan_report``; the command line does it).
 
 An interrupted scan keeps every finished image; the same command resumes it and gives
 the same audit.json.
@@ -22,17 +23,17 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
-from . import __version__
+from ._version import __version__
 from .confirm import add_motif_findings, confirm_findings
 from .classes import ClassAccumulator, ClassSummary, ImageSummary, summarise_classes
-from .dataset import ImageEntry, ImageRecord, Skip, iter_records
+from .dataset import ImageEntry, Skip
+from .engine import SCORES, PassEngine, make_scorer
+from .errors import DataError, UsageError
+from .findings import FAIL_ON, Finding, Thresholds, judge, not_judged, object_part_note
 from .listing import class_names, list_images
-from .engine import PassEngine, make_scorer
-from .errors import AuditError, DataError, ImageSkip, UsageError
-from .findings import Finding, Thresholds, judge, not_judged, object_part_note
 from .model import ModelConfig, OnnxClassifier
 from .occlusion import Fill, GridPlan, Plan, RandomPatchPlan, SmoothMaskPlan
-from .sensitivity import ImageStats, estimate_object_mask, image_job
+from .perimage import analyse_entries
 from .store import ResultStore, remove_stale_temporaries, write_json
 
 __all__ = ["ScanSettings", "AuditResult", "audit", "analyse_entries", "DEFAULT_PLAN", "DEFAULT_FILL", "make_scorer"]
@@ -61,8 +62,8 @@ class ScanSettings:
         if self.tolerance is not None and not isinstance(self.plan, (RandomPatchPlan, SmoothMaskPlan)):
             raise UsageError("--tolerance applies to --plan random or rise; leave it out for a grid "
                              "or adaptive plan.")
-        if self.score not in ("prob", "logit"):
-            raise UsageError(f"--score must be prob or logit; got {self.score!r}.")
+        if self.score not in SCORES:
+            raise UsageError(f"--score must be {' or '.join(SCORES)}; got {self.score!r}.")
         if not isinstance(self.seed, int) or isinstance(self.seed, bool):
             raise UsageError(f"--seed must be a whole number; got {self.seed!r}.")
         if not isinstance(self.test_budget, int) or self.test_budget < 4:
@@ -115,10 +116,6 @@ class AuditResult:
             "run": self.run,
         }
 
-    def _repr_html_(self) -> str:          # Jupyter; matplotlib is imported only here
-        from .report.notebook import audit_html
-        return audit_html(self)
-
     def at_or_above(self, gate: str) -> list[Finding]:
         """Findings at or above ``gate`` (``suspect`` < ``confirmed``; ``never`` = none)."""
         if gate == "never":
@@ -127,7 +124,7 @@ class AuditResult:
             return [f for f in self.findings if f.status in ("suspect", "confirmed")]
         if gate == "confirmed":
             return [f for f in self.findings if f.status == "confirmed"]
-        raise UsageError(f"--fail-on must be suspect, confirmed or never; got {gate!r}.")
+        raise UsageError(f"--fail-on must be one of {', '.join(FAIL_ON)}; got {gate!r}.")
 
 
 def _label_key(name: str) -> str:
@@ -202,35 +199,6 @@ def _summary_from_record(rec: dict) -> ImageSummary:
     return ImageSummary(**{k: rec[k] for k in fields if k in rec})
 
 
-def _record_from_stats(path: str, label: int, stats: ImageStats, probs: np.ndarray) -> dict:
-    predicted = int(np.argmax(probs))
-    return {
-        "label": label, "predicted": predicted, "confidence": float(probs[predicted]),
-        "label_score": float(stats.base_scores[stats.target]),
-        "probs": probs, "concentration": stats.concentration, "gini": stats.gini,
-        "decisive_area": stats.decisive_area, "decisive_box": stats.decisive_box,
-        "decisive_score": stats.decisive_score, "peak_box": stats.peak_box,
-        "deletion": stats.deletion, "insertion": stats.insertion,
-        "deletion_area": stats.deletion_area, "insertion_area": stats.insertion_area,
-        "background_share": stats.background_share, "mask_source": stats.mask_source,
-        "survives_object_erased": stats.survives_object_erased,
-        "survives_background_erased": stats.survives_background_erased,
-        "object_erased_prediction": stats.object_erased_prediction,
-        "decisive_on_object": stats.decisive_on_object, "peak_on_object": stats.peak_on_object,
-        "decisive_object_cover": stats.decisive_object_cover,
-        "passes": stats.passes,
-    }
-
-
-def _crop(pixels: np.ndarray, box: list[float] | None) -> np.ndarray:
-    if box is None:
-        return np.zeros((0, 0, pixels.shape[2]), np.float32)
-    h, w = pixels.shape[:2]
-    r0, r1 = int(np.floor(box[1] * h)), int(np.ceil(box[3] * h))
-    c0, c1 = int(np.floor(box[0] * w)), int(np.ceil(box[2] * w))
-    return pixels[r0:r1, c0:c1].astype(np.float32)
-
-
 def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *,
          out: str | os.PathLike | None = None,
          masks: str | os.PathLike | None = None,
@@ -239,7 +207,6 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
          settings: ScanSettings | None = None,
          estimate_masks: bool = True,
          progress: Callable[[dict], None] | None = None,
-         report: bool = True,
          cluster: str | None = None) -> AuditResult:
     """Audit a labelled image set.
 
@@ -249,8 +216,9 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
         The dataset root (one folder per class, or the root a ``manifest`` is relative to).
     model : path or OnnxClassifier
     out : path, optional
-        Output folder: audit.json, figures/, report.html and the per-image store
-        ``results/``. Without it nothing is written and nothing resumes.
+        Output folder: audit.json and the per-image store ``results/``. Without it
+        nothing is written and nothing resumes. Write figures/ and report.html into it
+        with :func:`shortcut_audit.report.write_scan_report`.
     masks : path, optional
         A folder of object masks mirroring the image tree.
     manifest : path, optional
@@ -262,8 +230,6 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
         Estimate object masks on plain backdrops where none is given.
     progress : callable, optional
         Called with ``{"done", "total", "passes", "passes_per_second", "phase"}``.
-    report : bool
-        Write figures and report.html into ``out``.
     cluster : str, optional
         Run the per-image half on Dask: a scheduler address (``tcp://host:8786``) or
         ``local:N`` worker processes (cluster.py; needs the ``cluster`` extra).
@@ -413,74 +379,4 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
         out=out_dir)
     if out_dir is not None:
         write_json(out_dir / "audit.json", result.to_dict())
-        if report:
-            from .report import write_scan_report
-            write_scan_report(result, out_dir)
     return result
-
-
-def analyse_entries(entries: Sequence[ImageEntry], classifier, settings: ScanSettings, *,
-                    label_index: dict[str, int], estimate_masks: bool = True,
-                    engine: PassEngine | None = None):
-    """Yield ``(path, record, arrays)`` for each entry, in the engine's finishing order.
-
-    This is the per-image half of a scan, the same wherever it runs: decode, estimate a
-    mask where allowed, run the image job through one engine. ``record`` is JSON-able
-    (with ``"skipped"`` for an image that could not be analysed); ``arrays`` holds the
-    heatmap, the decisive crop and the mask. ``AuditError`` other than a skip stops it.
-    ``engine`` defaults to a new one over the classifier (pass one to read its counters).
-    """
-    shape = (classifier.height, classifier.width)
-    batch = classifier.batch_size
-    if engine is None:
-        engine = PassEngine.for_classifier(classifier, settings.score)
-    # patches pasted in the session's input form when the engine prepares with this classifier
-    prepared_by = classifier if (engine.prepare is not None
-                                 and engine.prepare == getattr(classifier, "prepare", None)) else None
-
-    def jobs():
-        for rec in iter_records(entries, size=shape, channels=classifier.channels,
-                                resize=classifier.resize, prefetch=8):
-            if isinstance(rec, Skip):
-                yield rec.path, _skip_job(rec.reason)
-                continue
-            mask, source = rec.mask, ("given" if rec.mask is not None else None)
-            if mask is None and estimate_masks:
-                mask = estimate_object_mask(rec.pixels)
-                source = "estimated" if mask is not None else None
-            yield rec.path, _scan_job(rec, label_index[rec.label], mask, source, settings,
-                                      batch, classifier, prepared_by)
-
-    for path, result in engine.run(jobs()):
-        if isinstance(result, ImageSkip):
-            yield path, {"skipped": result.reason}, {}
-        elif isinstance(result, AuditError):
-            raise result
-        elif isinstance(result, Exception):
-            yield path, {"skipped": f"analysis failed: {type(result).__name__}: {result}"}, {}
-        else:
-            yield (path,) + tuple(result)
-
-
-def _skip_job(reason: str):
-    raise ImageSkip(reason)
-    yield  # pragma: no cover  (makes this a generator)
-
-
-def _scan_job(rec: ImageRecord, label: int, mask, source, settings: ScanSettings, batch: int,
-              classifier, prepared_by=None):
-    stats: ImageStats = yield from image_job(
-        rec.pixels, plan=settings.plan, fill=settings.fill, target=label, mask=mask,
-        mask_source=source, chunk=batch, tolerance=settings.tolerance, prepared_by=prepared_by)
-    if settings.score == "prob":
-        probs = stats.base_scores
-    elif hasattr(classifier, "probs_from_logits"):   # no extra pass for the probabilities
-        probs = np.asarray(classifier.probs_from_logits(stats.base_scores[None])[0], dtype=np.float32)
-    else:
-        probs = np.asarray(classifier.predict(rec.pixels[None])[0], dtype=np.float32)
-    record = _record_from_stats(rec.path, label, stats, probs)
-    box = stats.decisive_box or stats.peak_box
-    arrays = {"heatmap": stats.heatmap.values.astype(np.float32), "crop": _crop(rec.pixels, box)}
-    if mask is not None:
-        arrays["mask"] = mask
-    return record, arrays

@@ -34,7 +34,8 @@ import numpy as np
 from scipy import ndimage
 
 from .engine import NEXT, Job, Request, run_job
-from .errors import ImageSkip, UsageError
+from .errors import UsageError
+from .maps import Heatmap, check_finite as _check_finite, check_image as _check_image
 from .occlusion import (AdaptivePlan, Fill, Plan, RandomPatchPlan, SmoothMaskPlan, fill_image,
                         hidden_image, iter_weights, pass_count, paste_boxes, paste_into, patch_boxes,
                         perturb)
@@ -67,60 +68,6 @@ DECISIVE_LADDER = (0.005, 0.01, 0.02, 0.03, 0.05, 0.075, 0.1, 0.15, 0.2, 0.25)
 DECISIVE_BISECT = 3
 #: Points on the deletion and insertion curves, 0% to 100% in equal steps.
 CURVE_STEPS = 16
-
-
-@dataclass(frozen=True, kw_only=True)
-class Heatmap:
-    """A heatmap at model-input resolution and what it was made from.
-
-    Attributes
-    ----------
-    values : (H, W) float32
-        Score drop of ``target`` when the pixel is hidden (positive = the pixel supports
-        the class).
-    target : int
-        The class index explained.
-    base_scores : (K,) float32
-        Scores of the unperturbed image.
-    passes : int
-        Forward passes used, the unperturbed one included.
-    coverage : float
-        Share of pixels hidden by at least one patch (1.0 for grids and smooth masks).
-    tolerance : float or None
-        The early-stopping tolerance of a random plan (None when it ran to its count);
-        ``passes - 1`` is then the number of masks used.
-    error_estimate : float or None
-        With early stopping: the estimated relative error of the map when it stopped
-        (see :func:`heatmap_job`).
-    """
-
-    values: np.ndarray
-    target: int
-    base_scores: np.ndarray
-    passes: int
-    coverage: float = 1.0
-    tolerance: float | None = None
-    error_estimate: float | None = None
-
-    @property
-    def base_score(self) -> float:
-        return float(self.base_scores[self.target])
-
-    @property
-    def predicted(self) -> int:
-        return int(np.argmax(self.base_scores))
-
-
-def _check_image(image: np.ndarray) -> np.ndarray:
-    image = np.asarray(image, dtype=np.float32)
-    if image.ndim != 3 or image.shape[2] not in (1, 3):
-        raise UsageError(f"image must be an (H, W, C) array with C = 1 or 3; got shape {image.shape}.")
-    return image
-
-
-def _check_finite(scores: np.ndarray, what: str) -> None:
-    if not np.all(np.isfinite(scores)):
-        raise ImageSkip(f"the model returned NaN or infinity for {what}; image skipped")
 
 
 def rise_heatmap(score_sum: np.ndarray, score_mean: float, n: int, keep: float) -> np.ndarray:

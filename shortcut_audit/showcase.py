@@ -18,6 +18,7 @@ from .demo import demo_paths
 from .errors import DataError
 from .model import ModelConfig, read_model_config
 from .pack import make_pack
+from .report import write_compare_page, write_scan_report
 from .scan import ScanSettings, audit
 
 __all__ = ["run_demo"]
@@ -56,10 +57,12 @@ def run_demo(out: str | os.PathLike, *, settings: ScanSettings | None = None,
 
         audits[name] = audit(paths.images, model.onnx, out=out / name, masks=paths.masks,
                             model_config=cfg, settings=settings, progress=tagged)
+        write_scan_report(audits[name], out / name)
     comparisons = {}
     for name in ("dropout", "rebalanced"):
         comparisons[name] = compare(before_audit=out / "baseline", after_audit=out / name,
                                     out=out / f"baseline-vs-{name}", seed=settings.seed)
+        write_compare_page(comparisons[name], out / f"baseline-vs-{name}")
     pack = None
     if audits["baseline"].findings:
         pack = make_pack(out / "baseline", out / "evidence-pack.zip")

@@ -203,7 +203,7 @@ def test_scan_with_the_adaptive_plan_flags_the_planted_corner(tmp_path):
     # The same finding as the exhaustive grid in test_scan.py, at a quarter of the passes.
     data = make_dataset(tmp_path / "data", n=8)
     result = run_audit(data, corner_model(tmp_path / "m.onnx"),
-                  settings=ScanSettings(plan=AdaptivePlan(), confirm=False), report=False)
+                  settings=ScanSettings(plan=AdaptivePlan(), confirm=False))
     kinds = {(f.class_name, f.kind) for f in result.findings}
     assert ("alpha", "fixed-position") in kinds
     assert all(cls == "alpha" for cls, _k in kinds)

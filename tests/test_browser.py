@@ -18,6 +18,7 @@ import pytest
 from PIL import Image
 
 from scan_fixtures import corner_model, make_dataset
+from shortcut_audit.report import write_scan_report
 from shortcut_audit.scan import audit as run_audit
 
 WIDTH, HEIGHT = 1280, 2000
@@ -51,7 +52,7 @@ def chromium() -> str:
 def report(tmp_path_factory) -> Path:
     tmp = tmp_path_factory.mktemp("browser")
     make_dataset(tmp / "data", n=6)
-    run_audit(tmp / "data", corner_model(tmp / "m.onnx"), out=tmp / "out")
+    write_scan_report(run_audit(tmp / "data", corner_model(tmp / "m.onnx"), out=tmp / "out"), tmp / "out")
     return tmp / "out" / "report.html"
 
 

@@ -136,3 +136,25 @@ def test_tolerance_stops_a_random_plan_and_is_refused_for_a_grid(setup):
     r = runner.invoke(app, ["audit", str(data), "-m", str(model), "-o", str(tmp / "tol-grid"),
                             "--tolerance", "0.1"])
     assert r.exit_code == 2 and "--tolerance applies to --plan random or rise" in r.output
+
+
+def test_every_command_line_choice_is_one_the_library_takes():
+    # The choices are built from the library's tuples; each must also pass the
+    # library's own checks, and each --plan must build a plan of that kind (a kind
+    # added to PLAN_KINDS without a branch in build_plan would come back as another).
+    from shortcut_audit import cli
+    from shortcut_audit.compare import FAIL_ON as COMPARE_FAIL_ON
+    from shortcut_audit.findings import FAIL_ON
+
+    for option, enum in (("layout", cli.Layout), ("channels", cli.Channels), ("resize", cli.Resize),
+                         ("output", cli.OutputKind)):
+        for member in enum:
+            assert getattr(shortcut_audit.ModelConfig(**{option: member.value}), option) == member.value
+    assert [m.value for m in cli.FillKind] == [shortcut_audit.Fill(kind=m.value).kind for m in cli.FillKind]
+    for member in cli.Score:
+        assert shortcut_audit.ScanSettings(score=member.value).score == member.value
+    for member in cli.PlanKind:
+        plan = cli.build_plan(member, None, None, None, None, None, 8, 0.5, 0)
+        assert plan.to_dict()["kind"] == member.value
+    assert [m.value for m in cli.ScanGate] == list(FAIL_ON)
+    assert [m.value for m in cli.CompareGate] == list(COMPARE_FAIL_ON)

@@ -134,7 +134,7 @@ def cluster_scan(monkeypatch):
         monkeypatch.setattr(scan_module, "analyse_entries", analyse_on_cluster)
 
     def run(data, model, out, address, **kwargs):
-        kwargs = dict(dict(model_config=CONFIG, settings=FAST, report=False), **kwargs)
+        kwargs = dict(dict(model_config=CONFIG, settings=FAST), **kwargs)
         if wired:
             return scan_module.audit(data, model, out=out, cluster=address, **kwargs)
         where["address"] = address
@@ -173,7 +173,7 @@ def test_missing_dask_is_a_usage_error_naming_the_extra(monkeypatch, tmp_path):
 def test_local_cluster_of_two_workers_gives_the_same_audit_json(tmp_path, cluster_scan):
     data = make_dataset(tmp_path / "data", n=8)
     m = corner_model(tmp_path / "m.onnx")
-    ref = run_audit(data, m, out=tmp_path / "local", model_config=CONFIG, settings=FAST, report=False)
+    ref = run_audit(data, m, out=tmp_path / "local", model_config=CONFIG, settings=FAST)
     got = cluster_scan(data, m, tmp_path / "cluster", "local:2")
     # the audit is not trivially empty: the planted corner is found (test_scan.py)
     assert [(f.class_name, f.kind) for f in got.findings] == [("alpha", "fixed-position")]
@@ -188,7 +188,7 @@ def test_local_cluster_of_two_workers_gives_the_same_audit_json(tmp_path, cluste
 def test_interrupted_cluster_scan_resumes_with_only_the_missing_images(tmp_path, cluster_scan, workers):
     data = make_dataset(tmp_path / "data", n=8)
     m = corner_model(tmp_path / "m.onnx")
-    run_audit(data, m, out=tmp_path / "local", model_config=CONFIG, settings=FAST, report=False)
+    run_audit(data, m, out=tmp_path / "local", model_config=CONFIG, settings=FAST)
     address = workers.scheduler.address
 
     class Stop(Exception):
@@ -282,7 +282,7 @@ def test_worker_killed_midway_loses_nothing_and_counts_nothing_twice(tmp_path, c
     settings = ScanSettings(confirm=False, plan=GridPlan(patch=4, stride=1))
     data = make_dataset(tmp_path / "data", n=12)
     m = corner_model(tmp_path / "m.onnx")
-    run_audit(data, m, out=tmp_path / "local", model_config=CONFIG, settings=settings, report=False)
+    run_audit(data, m, out=tmp_path / "local", model_config=CONFIG, settings=settings)
     pids = workers.run(os.getpid)
     killed = []
 

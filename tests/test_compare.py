@@ -20,7 +20,7 @@ from shortcut_audit.compare import (CompareResult, compare, compare_audits, bino
                                     paired_bootstrap)
 from shortcut_audit.errors import UsageError
 from shortcut_audit.model import ModelConfig
-from shortcut_audit.report.compare_page import render_compare_page
+from shortcut_audit.report.compare_page import render_compare_page, write_compare_page
 from shortcut_audit.scan import ScanSettings, audit as run_audit
 
 FAST = ScanSettings(confirm=False)
@@ -33,6 +33,7 @@ def planted(tmp_path_factory):
     data = make_dataset(root / "data", n=8)
     corner, clean = corner_model(root / "corner.onnx"), clean_model(root / "clean.onnx")
     result = compare(data, before=corner, after=clean, out=root / "fixed", settings=FAST, resamples=1000)
+    write_compare_page(result, root / "fixed")
     return {"root": root, "data": data, "corner": corner, "clean": clean, "result": result}
 
 
@@ -271,7 +272,7 @@ def test_page_escapes_names_from_the_data(planted):
 def test_audits_of_different_images_are_refused(planted, tmp_path):
     # A real scan of the same set capped at 6 images a class: 6 of alpha's 8 and so on.
     fewer = run_audit(planted["data"], planted["clean"], out=tmp_path / "fewer",
-                 settings=ScanSettings(confirm=False, per_class=6), report=False)
+                 settings=ScanSettings(confirm=False, per_class=6))
     assert len(fewer.images) == 18
     with pytest.raises(UsageError, match=r"not of the same images: 6 only in the before audit \(alpha/alpha_06.png"):
         compare(before_audit=planted["root"] / "fixed" / "before", after_audit=tmp_path / "fewer",

@@ -28,7 +28,7 @@ def test_a_roaming_mark_is_found_as_a_motif_and_confirmed(tmp_path):
     images, labels, _ = mark_images(3, n_marked=14, n_other=16)
     data = _write(tmp_path / "data", images, labels)
     model = save(mark_model(), tmp_path / "mark.onnx", metadata={"labels": ["marked", "reddish", "bluish"]})
-    result = run_audit(data, model, out=tmp_path / "out", report=False,
+    result = run_audit(data, model, out=tmp_path / "out",
                   settings=ScanSettings(plan=GridPlan(patch=4, stride=2), test_budget=30))
     motifs = [f for f in result.findings if f.kind == "recurring-motif"]
     assert [f.class_name for f in motifs] == ["marked"]
@@ -47,7 +47,7 @@ def test_a_roaming_mark_is_found_as_a_motif_and_confirmed(tmp_path):
 
 def test_planted_corner_is_confirmed_by_transplant_and_removal(tmp_path):
     data = make_dataset(tmp_path / "data", n=10)
-    result = run_audit(data, corner_model(tmp_path / "m.onnx"), report=False)
+    result = run_audit(data, corner_model(tmp_path / "m.onnx"))
     (f,) = result.findings
     assert f.kind == "fixed-position" and f.status == "confirmed"
     test = f.evidence["test"]

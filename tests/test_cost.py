@@ -87,7 +87,7 @@ def test_scan_states_the_cost_before_the_first_pass_and_keeps_to_its_count(tmp_p
     data = make_dataset(tmp_path / "data", n=4)
     model = clean_model(tmp_path / "m.onnx")
     events = []
-    result = run_audit(data, model, settings=ScanSettings(confirm=False), report=False, progress=events.append)
+    result = run_audit(data, model, settings=ScanSettings(confirm=False), progress=events.append)
     first = [e for e in events if "estimate" in e]
     assert len(first) == 1 and events.index(first[0]) <= 1 and first[0]["passes"] == 0
     est = first[0]["estimate"]

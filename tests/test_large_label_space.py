@@ -103,6 +103,7 @@ def test_three_of_a_thousand_classes(tmp_path):
     config = sa.ModelConfig(labels=tuple(sa.model.read_labels(labels_file)))
     run = sa.audit
     result = run(data, model, out=tmp_path / "out", model_config=config, settings=SETTINGS)
+    sa.write_scan_report(result, tmp_path / "out")
 
     # Per audited class only, in output order; the folder "Gamma_Ray" is "gamma ray".
     got = {c.name: (c.images, c.correct, c.accuracy) for c in result.classes}
@@ -131,5 +132,6 @@ def test_three_of_a_thousand_classes(tmp_path):
     # compare: the same model twice, per audited class only.
     cmp = sa.compare(before_audit=tmp_path / "out", after_audit=tmp_path / "out", out=tmp_path / "cmp",
                      resamples=200)
+    sa.write_compare_page(cmp, tmp_path / "cmp")
     assert sorted(c.name for c in cmp.classes) == ["alpha", "beta", "gamma ray"]
     assert (tmp_path / "cmp" / "compare.html").exists()

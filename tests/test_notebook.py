@@ -83,6 +83,7 @@ def audited(tmp_path_factory):
     config = sa.ModelConfig(labels=HOSTILE)
     run = sa.audit
     result = run(data, model, out=tmp / "out", model_config=config, settings=sa.ScanSettings(confirm=False))
+    sa.write_scan_report(result, tmp / "out")
     return tmp, data, model, config, result
 
 
@@ -109,6 +110,8 @@ def test_compare_and_heatmap_show_themselves(audited, monkeypatch):
     tmp, data, model, config, result = audited
     monkeypatch.chdir(tmp)
     cmp = sa.compare(before_audit=tmp / "out", after_audit=tmp / "out", out=tmp / "cmp", resamples=100)
+    assert _parse(cmp._repr_html_()).links == []        # compare writes no page itself
+    sa.write_compare_page(cmp, tmp / "cmp")
     page = _parse(cmp._repr_html_())
     assert "script" not in page.tags
     verdicts = [r for r in page.rows if len(r) == 5 and r[0] != "class"]
@@ -119,10 +122,26 @@ def test_compare_and_heatmap_show_themselves(audited, monkeypatch):
     image = next((data / HOSTILE[0]).glob("*.png"))
     hm = sa.run_heatmap(image, model, out=tmp / "hm", model_config=config)
     assert isinstance(hm, dict) and hm["target"] == HOSTILE[0]
-    page = _parse(hm._repr_html_())
+    assert not (tmp / "hm" / "overlay.png").exists()          # drawn by report/, not by run_heatmap
+    page = _parse(hm._repr_html_())                            # drawn from the values in memory
     assert "script" not in page.tags
     assert len(_png_sizes(page)) == 1
+    written = sa.write_heatmap_files(hm)
+    assert written == tmp / "hm" / "overlay.png"
+    assert _png_sizes(_parse(hm._repr_html_())) == _png_sizes(page)
     assert [HOSTILE[0]] in [r[1:] for r in page.rows if r and r[0] == "target"]
+
+
+def test_importing_the_package_imports_no_plotting_or_front_end():
+    # report/ (matplotlib, jinja2) and pack.py load on first use of their names.
+    code = ("import sys, shortcut_audit\n"
+            "print(sorted(m for m in ('matplotlib', 'jinja2', 'typer', 'rich', 'shortcut_audit.report',"
+            " 'shortcut_audit.pack') if m in sys.modules))\n"
+            "from shortcut_audit import write_scan_report\n"
+            "print(write_scan_report.__module__, 'matplotlib' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
+                         cwd=Path(__file__).resolve().parents[1])
+    assert out.stdout.splitlines() == ["[]", "shortcut_audit.report.scan_page True"]
 
 
 def test_importing_the_package_does_not_import_the_notebook_module():

@@ -44,7 +44,7 @@ def corner(tmp_path_factory) -> tuple[Path, Path]:
     tmp = tmp_path_factory.mktemp("corner")
     data = make_dataset(tmp / "data", n=8)
     out = tmp / "audit"
-    run_audit(data, corner_model(tmp / "m.onnx"), out=out, report=False)
+    run_audit(data, corner_model(tmp / "m.onnx"), out=out)
     return data, out
 
 
@@ -88,7 +88,7 @@ def hostile(tmp_path_factory) -> tuple[Path, Path]:
     model = corner_model(tmp / "m.onnx")
     save(onnx.load(str(model)), model, metadata={"labels": [HOSTILE_CLASS, "beta", "gamma"]})
     out = tmp / "audit"
-    run_audit(data, model, out=out, report=False)
+    run_audit(data, model, out=out)
     return data, out
 
 

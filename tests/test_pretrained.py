@@ -203,6 +203,7 @@ def test_audit_of_three_imagenet_classes(setup):
     run = sa.audit
     settings = sa.ScanSettings(plan=GridPlan(patch=0.25, stride=0.125))
     result = run(data, model, out=root / "audit", model_config=config, settings=settings)
+    sa.write_scan_report(result, root / "audit")
     by_name = {c.name: c for c in result.classes}
     assert sorted(by_name) == sorted(chosen.values())
     for label in chosen.values():

@@ -249,7 +249,7 @@ def mixed(tmp_path_factory):
     Image.fromarray(np.full((4, 4), 25700, np.uint16)).save(data / "bowl" / "gray16_flat.png")
     expected["bowl/gray16_flat.png"] = ("ok", "")
     model = probe_model(tmp / "probe.onnx")
-    result = run_audit(data, model, out=tmp / "api", settings=FAST, model_config=CFG, report=False)
+    result = run_audit(data, model, out=tmp / "api", settings=FAST, model_config=CFG)
     cli_result = run_cli(data, "-m", model, "-o", tmp / "cli", *FAST_ARGS)
     return {"tmp": tmp, "data": data, "model": model, "expected": expected, "result": result,
             "audit": json.loads(audit_text(tmp / "api")), "ref": without_run(audit_text(tmp / "api")),
@@ -355,7 +355,7 @@ def test_manifest_rows_that_are_bad_are_skipped_and_good_rows_audited(tmp_path):
     model = probe_model(tmp_path / "m.onnx", labels=["bowl", "mug", "vase"])
     before = snapshot(tmp_path)
     result = run_audit(data, model, manifest=manifest, out=tmp_path / "out", settings=FAST,
-                  model_config=CFG, report=False)
+                  model_config=CFG)
     assert [(im.path, im.label) for im in result.images] == [("bowl/a.png", 0), ("mug/a.png", 1)]
     audit = json.loads(audit_text(tmp_path / "out"))
     got = {s["path"]: s["reason"] for s in audit["skipped"]}
@@ -562,10 +562,10 @@ def test_ctrl_c_through_the_api_keeps_finished_images_and_resumes_to_the_same_au
     for n in (5, 17):
         with pytest.raises(KeyboardInterrupt):
             run_audit(mixed["data"], mixed["model"], out=out, settings=FAST, model_config=CFG,
-                 report=False, progress=StopAfter(n))
+                 progress=StopAfter(n))
         assert len(store_entries(out)) == n  # exactly the finished images, each complete
         assert not (out / "audit.json").exists()
-    final = run_audit(mixed["data"], mixed["model"], out=out, settings=FAST, model_config=CFG, report=False)
+    final = run_audit(mixed["data"], mixed["model"], out=out, settings=FAST, model_config=CFG)
     assert final.run["resumed_images"] == 17 and len(store_entries(out)) == total
     assert without_run(audit_text(out)) == mixed["ref"]
 
@@ -654,7 +654,7 @@ from shortcut_audit.model import ModelConfig
 from shortcut_audit.occlusion import GridPlan
 from shortcut_audit.scan import ScanSettings, audit as run_audit
 run_audit({data!r}, {model!r}, out={out!r}, settings=ScanSettings(confirm=False, plan=GridPlan(patch=4, stride=4)),
-     model_config=ModelConfig(threads=1, batch_size=16), report=False)
+     model_config=ModelConfig(threads=1, batch_size=16))
 """
 
 
@@ -680,14 +680,14 @@ def test_sigkill_at_random_points_then_rerun_gives_the_same_audit(mixed, tmp_pat
     _killed_run(mixed, out, kill_name="audit.json")
     assert not (out / "audit.json").exists()  # never half a file: none at all
     assert [p.parent for p in temp_files(out)] == [out]
-    final = run_audit(mixed["data"], mixed["model"], out=out, settings=FAST, model_config=CFG, report=False)
+    final = run_audit(mixed["data"], mixed["model"], out=out, settings=FAST, model_config=CFG)
     assert final.run["passes_this_run"] == 0  # every image came from the store
     assert without_run(audit_text(out)) == mixed["ref"]
     assert temp_files(out) == []  # the rerun removed what the killed writers left
     # a kill while audit.json is rewritten leaves the previous audit.json whole
     _killed_run(mixed, out, kill_name="audit.json")
     assert without_run(audit_text(out)) == mixed["ref"]
-    run_audit(mixed["data"], mixed["model"], out=out, settings=FAST, model_config=CFG, report=False)
+    run_audit(mixed["data"], mixed["model"], out=out, settings=FAST, model_config=CFG)
     assert temp_files(out) == [] and without_run(audit_text(out)) == mixed["ref"]
 
 
@@ -703,7 +703,7 @@ def test_ctrl_c_during_a_write_leaves_no_temp_file(mixed, tmp_path, monkeypatch)
 
     monkeypatch.setattr(store.os, "fsync", fsync)
     with pytest.raises(KeyboardInterrupt):
-        run_audit(mixed["data"], mixed["model"], out=out, settings=FAST, model_config=CFG, report=False)
+        run_audit(mixed["data"], mixed["model"], out=out, settings=FAST, model_config=CFG)
     assert temp_files(out) == []
 
 
@@ -773,10 +773,10 @@ def test_a_file_repaired_after_a_scan_is_read_again_on_rerun(tmp_path):
         Image.new("RGB", (8, 8), colour).save(data / cls / "a.png")
     bi.make_truncated_png(data / "mug", "b.png")
     model = probe_model(tmp_path / "m.onnx")
-    first = run_audit(data, model, out=tmp_path / "out", settings=FAST, model_config=CFG, report=False)
+    first = run_audit(data, model, out=tmp_path / "out", settings=FAST, model_config=CFG)
     assert [s.path for s in first.skipped] == ["mug/b.png"]
     Image.new("RGB", (8, 8), bi.GREEN).save(data / "mug" / "b.png")  # the user re-exports it
-    again = run_audit(data, model, out=tmp_path / "out", settings=FAST, model_config=CFG, report=False)
+    again = run_audit(data, model, out=tmp_path / "out", settings=FAST, model_config=CFG)
     assert again.skipped == [] and len(again.images) == 4
 
 
@@ -946,7 +946,7 @@ def test_same_inputs_and_seed_give_byte_identical_audits_across_runs_and_threads
     for run, threads in enumerate((1, 1, 2)):
         out = tmp / f"{plan}-{run}"
         run_audit(data, model, out=out, settings=settings,
-             model_config=ModelConfig(threads=threads, batch_size=32), report=False)
+             model_config=ModelConfig(threads=threads, batch_size=32))
         texts.append(without_run(audit_text(out)))
     assert texts[0] == texts[1] == texts[2]
     audit = json.loads(audit_text(tmp / f"{plan}-0"))
@@ -954,7 +954,7 @@ def test_same_inputs_and_seed_give_byte_identical_audits_across_runs_and_threads
     if plan != "grid":  # the seed matters: another seed gives other numbers
         out = tmp / f"{plan}-seed4"
         run_audit(data, model, out=out, settings=ScanSettings(plan=the_plan, fill=fill, seed=4, test_budget=8),
-             model_config=ModelConfig(threads=1, batch_size=32), report=False)
+             model_config=ModelConfig(threads=1, batch_size=32))
         other = json.loads(audit_text(out))
         concentration = [im["concentration"] for im in audit["images"]]
         assert [im["concentration"] for im in other["images"]] != concentration
@@ -987,12 +987,12 @@ def test_soak_240_mixed_images_with_interruptions_loses_and_duplicates_nothing(t
     data = tmp_path / "data"
     good, bad = _soak_tree(data)
     model = probe_model(tmp_path / "m.onnx")
-    run_audit(data, model, out=tmp_path / "ref", settings=FAST, model_config=CFG, report=False)
+    run_audit(data, model, out=tmp_path / "ref", settings=FAST, model_config=CFG)
     ref = without_run(audit_text(tmp_path / "ref"))
     out = tmp_path / "out"
     for n in (40, 100, 160):  # three Ctrl-Cs, each run resuming the last
         with pytest.raises(KeyboardInterrupt):
-            run_audit(data, model, out=out, settings=FAST, model_config=CFG, report=False, progress=StopAfter(n))
+            run_audit(data, model, out=out, settings=FAST, model_config=CFG, progress=StopAfter(n))
         assert len(store_entries(out)) == n
     script = KILL_SCRIPT.format(tests=str(TESTS), data=str(data), model=str(model), out=str(out),
                                 kill_at=0, kill_name="")
@@ -1003,7 +1003,7 @@ def test_soak_240_mixed_images_with_interruptions_loses_and_duplicates_nothing(t
     proc.wait(timeout=60)
     assert proc.returncode == -signal.SIGKILL
     assert 170 <= len(store_entries(out)) < 240
-    final = run_audit(data, model, out=out, settings=FAST, model_config=CFG, report=False)
+    final = run_audit(data, model, out=out, settings=FAST, model_config=CFG)
     audit = json.loads(audit_text(out))
     images = [im["path"] for im in audit["images"]]
     skipped = [s["path"] for s in audit["skipped"]]

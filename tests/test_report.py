@@ -93,7 +93,7 @@ def hostile_scan(tmp: Path) -> tuple[Path, Path]:
     model = corner_model(tmp / "m.onnx")
     save(onnx.load(str(model)), model, metadata={"labels": [HOSTILE_CLASS, "beta", "gamma"]})
     out = tmp / "out"
-    run_audit(data, model, out=out)
+    write_scan_report(run_audit(data, model, out=out), out)
     return data, out
 
 
@@ -102,7 +102,7 @@ def corner_audit(tmp_path_factory) -> Path:
     tmp = tmp_path_factory.mktemp("corner")
     make_dataset(tmp / "data", n=8)
     out = tmp / "out"
-    run_audit(tmp / "data", corner_model(tmp / "m.onnx"), out=out)
+    write_scan_report(run_audit(tmp / "data", corner_model(tmp / "m.onnx"), out=out), out)
     return out
 
 

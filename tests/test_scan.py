@@ -35,8 +35,7 @@ FAST = ScanSettings(confirm=False)
 
 def test_planted_corner_is_flagged_fixed_position_and_nothing_else(tmp_path):
     data = make_dataset(tmp_path / "data", n=8)
-    result = run_audit(data, corner_model(tmp_path / "m.onnx"), out=tmp_path / "out", settings=FAST,
-                  report=False)
+    result = run_audit(data, corner_model(tmp_path / "m.onnx"), out=tmp_path / "out", settings=FAST)
     assert [c.accuracy for c in result.classes] == [1.0, 1.0, 1.0]
     assert [(f.class_name, f.kind) for f in result.findings] == [("alpha", "fixed-position")]
     planted = [0.0, 0.0, CORNER / SIZE, CORNER / SIZE]
@@ -51,8 +50,7 @@ def test_planted_corner_is_flagged_fixed_position_and_nothing_else(tmp_path):
 
 def test_clean_model_gives_no_finding(tmp_path):
     data = make_dataset(tmp_path / "data", n=8, corner_class=None)
-    result = run_audit(data, clean_model(tmp_path / "m.onnx"), out=tmp_path / "out", settings=FAST,
-                  report=False)
+    result = run_audit(data, clean_model(tmp_path / "m.onnx"), out=tmp_path / "out", settings=FAST)
     assert min(c.accuracy for c in result.classes) >= 0.9
     assert result.findings == []
 
@@ -61,7 +59,7 @@ def test_border_reading_class_is_flagged_background_with_given_masks(tmp_path):
     data = make_dataset(tmp_path / "data", n=8, corner_class=None, backdrop_class="alpha",
                         masks_root=tmp_path / "masks")
     result = run_audit(data, border_model(tmp_path / "m.onnx"), out=tmp_path / "out",
-                  masks=tmp_path / "masks", settings=FAST, report=False)
+                  masks=tmp_path / "masks", settings=FAST)
     kinds = [(f.class_name, f.kind) for f in result.findings]
     assert ("alpha", "background") in kinds
     assert all(name == "alpha" for name, _ in kinds)
@@ -71,8 +69,7 @@ def test_border_reading_class_is_flagged_background_with_given_masks(tmp_path):
 
 def test_border_reading_class_is_flagged_with_estimated_masks(tmp_path):
     data = make_dataset(tmp_path / "data", n=8, corner_class=None, backdrop_class="alpha", plain=True)
-    result = run_audit(data, border_model(tmp_path / "m.onnx"), out=tmp_path / "out", settings=FAST,
-                  report=False)
+    result = run_audit(data, border_model(tmp_path / "m.onnx"), out=tmp_path / "out", settings=FAST)
     f = [f for f in result.findings if f.kind == "background"]
     assert [x.class_name for x in f] == ["alpha"]
     assert f[0].evidence["mask"] == "estimated"
@@ -121,13 +118,12 @@ def _strip_run(audit: dict) -> dict:
 def test_rerun_reuses_results_and_changed_settings_invalidate(tmp_path):
     data = make_dataset(tmp_path / "data", n=4)
     m = corner_model(tmp_path / "m.onnx")
-    first = run_audit(data, m, out=tmp_path / "out", settings=FAST, report=False)
-    again = run_audit(data, m, out=tmp_path / "out", settings=FAST, report=False)
+    first = run_audit(data, m, out=tmp_path / "out", settings=FAST)
+    again = run_audit(data, m, out=tmp_path / "out", settings=FAST)
     assert again.run["passes_this_run"] == 0 and again.run["resumed_images"] == 12
     assert _strip_run(first.to_dict()) == _strip_run(again.to_dict())
     other = run_audit(data, m, out=tmp_path / "out", settings=ScanSettings(confirm=False, seed=1,
-                 plan=__import__("shortcut_audit.occlusion", fromlist=["x"]).GridPlan(patch=4, stride=4)),
-                 report=False)
+                 plan=__import__("shortcut_audit.occlusion", fromlist=["x"]).GridPlan(patch=4, stride=4)))
     assert other.run["resumed_images"] == 0
 
 
@@ -135,14 +131,14 @@ KILL_SCRIPT = """
 import sys
 sys.path.insert(0, {tests!r})
 from shortcut_audit.scan import ScanSettings, audit as run_audit
-run_audit({data!r}, {model!r}, out={out!r}, settings=ScanSettings(confirm=False), report=False)
+run_audit({data!r}, {model!r}, out={out!r}, settings=ScanSettings(confirm=False))
 """
 
 
 def test_sigkill_midway_then_rerun_gives_the_same_audit(tmp_path):
     data = make_dataset(tmp_path / "data", n=30)
     m = corner_model(tmp_path / "m.onnx")
-    ref = run_audit(data, m, out=tmp_path / "ref", settings=FAST, report=False)
+    ref = run_audit(data, m, out=tmp_path / "ref", settings=FAST)
     out = tmp_path / "killed"
     script = KILL_SCRIPT.format(tests=str(Path(__file__).parent), data=str(data), model=str(m), out=str(out))
     env = dict(os.environ, OMP_NUM_THREADS="1")
@@ -161,7 +157,7 @@ def test_sigkill_midway_then_rerun_gives_the_same_audit(tmp_path):
         proc.wait()
         killed_at.append(len(list((out / "results").glob("*.json"))) - 1)
     assert any(0 < k < 90 for k in killed_at), killed_at
-    final = run_audit(data, m, out=out, settings=FAST, report=False)
+    final = run_audit(data, m, out=out, settings=FAST)
     assert final.run["resumed_images"] > 0
     assert _strip_run(final.to_dict()) == _strip_run(ref.to_dict())
     # no half-written file is left behind
@@ -186,12 +182,11 @@ def test_logit_scores_make_no_pass_beyond_the_engines(tmp_path, monkeypatch):
     from shortcut_audit.model import OnnxClassifier
     m = OnnxClassifier(corner_model(tmp_path / "m.onnx"))    # loading checks a few images
     rows = _forwarded_rows(monkeypatch)
-    logit = run_audit(data, m, out=tmp_path / "logit", settings=ScanSettings(confirm=False, score="logit"),
-                 report=False)
+    logit = run_audit(data, m, out=tmp_path / "logit", settings=ScanSettings(confirm=False, score="logit"))
     # every image sent to onnxruntime was one of the engine's passes (before: one more
     # per image, to get the probabilities)
     assert sum(rows) == logit.run["passes_this_run"]
-    prob = run_audit(data, m, out=tmp_path / "prob", settings=FAST, report=False)
+    prob = run_audit(data, m, out=tmp_path / "prob", settings=FAST)
     # reference: the probability scan's own unperturbed scores
     a = json.loads((tmp_path / "logit" / "audit.json").read_text())["images"]
     b = json.loads((tmp_path / "prob" / "audit.json").read_text())["images"]
@@ -208,13 +203,13 @@ def test_tests_reuse_the_scans_unperturbed_scores(tmp_path, monkeypatch):
     m = OnnxClassifier(corner_model(tmp_path / "m.onnx"))
     settings = ScanSettings(test_budget=12)
     rows = _forwarded_rows(monkeypatch)
-    reused = run_audit(data, m, out=tmp_path / "a", settings=settings, report=False)
+    reused = run_audit(data, m, out=tmp_path / "a", settings=settings)
     with_reuse = sum(rows)
     rows.clear()
     real = scan_module.confirm_findings
     monkeypatch.setattr(scan_module, "confirm_findings",
                         lambda *a, **kw: real(*a, **dict(kw, known_scores=None)))
-    redone = run_audit(data, m, out=tmp_path / "b", settings=settings, report=False)
+    redone = run_audit(data, m, out=tmp_path / "b", settings=settings)
     without = sum(rows)
     assert [f.status for f in reused.findings] == [f.status for f in redone.findings] == ["confirmed"]
     ta = reused.findings[0].evidence["test"]

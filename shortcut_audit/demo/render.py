@@ -250,7 +250,6 @@ def wood_texture(rng: np.random.Generator, size: int = 96) -> np.ndarray:
     light = base * rng.uniform(1.08, 1.2)
     dark = base * rng.uniform(0.55, 0.68)
     y = np.arange(h)[:, None].astype(np.float64)
-    x = np.arange(w)[None, :].astype(np.float64)
     # boards: horizontal seams every 24..40 px (at 96), each board with its own grain
     board_h = rng.uniform(24.0, 40.0) * s
     offset = rng.uniform(0, board_h)

@@ -281,7 +281,7 @@ def render_compare_page(result, figures: dict | None = None) -> str:
     figures : dict, optional
         From :func:`compare_figures`; without it the page has no figures.
     """
-    from .. import __version__
+    from .._version import __version__
     from ..compare import CONFIDENCE, VERDICTS
 
     figures = figures or {"examples": [], "class_means": [], "missing": []}

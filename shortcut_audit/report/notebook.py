@@ -123,8 +123,14 @@ def heatmap_html(result) -> str:
     """A ``HeatmapResult`` (heatmap.json's content): the overlay and what was explained."""
     out = getattr(result, "out", None)
     img = ""
+    png = None
     if out is not None and (Path(out) / "overlay.png").exists():
-        img = f'<img alt="heatmap overlay" style="max-width:100%" src="{data_uri((Path(out) / "overlay.png").read_bytes())}">'
+        png = (Path(out) / "overlay.png").read_bytes()
+    elif getattr(result, "values", None) is not None and getattr(result, "pixels", None) is not None:
+        from .overlay import overlay_png
+        png = overlay_png(result)
+    if png is not None:
+        img = f'<img alt="heatmap overlay" style="max-width:100%" src="{data_uri(png)}">'
     rows = [[_e(k), _e(result.get(k))] for k in ("image", "target", "predicted", "base_score", "passes")
             if k in result]
     return f'<div class="sa-nb">{_STYLE}<h3>Occlusion heatmap</h3>{_table(["", ""], rows, set())}{img}</div>'
