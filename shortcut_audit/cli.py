@@ -29,8 +29,8 @@ from .compare import FAIL_ON as COMPARE_FAIL_ON
 from .engine import SCORES
 from .errors import AuditError, UsageError
 from .findings import FAIL_ON, Thresholds, parse_threshold_overrides, read_thresholds
-from .model import (COLORS, LAYOUTS, OUTPUT_KINDS, RESIZES, ModelConfig, parse_numbers, parse_size, read_labels,
-                    read_model_config)
+from .options import (COLORS, LAYOUTS, OUTPUT_KINDS, RESIZES, ModelConfig, parse_numbers, parse_size, read_labels,
+                      read_model_config)
 from .occlusion import FILL_KINDS, PLAN_KINDS, Fill, GridPlan, RandomPatchPlan, SmoothMaskPlan
 
 app = typer.Typer(

@@ -57,7 +57,7 @@ from typing import Any
 from .dataset import ImageEntry
 from .engine import EngineStats
 from .errors import AuditError, ClusterError, DataError, ImageSkip, ModelError, OutputError, UsageError
-from .model import ModelConfig
+from .options import ModelConfig
 
 __all__ = [
     "ClusterError",

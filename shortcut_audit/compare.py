@@ -636,7 +636,7 @@ def _finding(name: str, kind: str, fb: dict | None, fa: dict | None, sd: Differe
 
 
 def _config(value, option: str):
-    from .model import ModelConfig, read_model_config
+    from .options import ModelConfig, read_model_config
 
     if value is None or isinstance(value, ModelConfig):
         return value

@@ -16,7 +16,7 @@ from typing import Callable
 from .compare import compare
 from .demo import demo_paths
 from .errors import DataError
-from .model import ModelConfig, read_model_config
+from .options import ModelConfig, read_model_config
 from .pack import make_pack
 from .report import write_compare_page, write_scan_report
 from .scan import ScanSettings, audit
