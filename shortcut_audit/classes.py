@@ -13,8 +13,9 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
+from scipy import ndimage
 
-from .sensitivity import box_of
+from .maps import box_of
 
 __all__ = [
     "ImageSummary",
@@ -129,6 +130,15 @@ class ClassAccumulator:
         return (self.sums[label] / self.counts[label]).astype(np.float32)
 
 
+def _place(pm: np.ndarray, top: float) -> list[float] | None:
+    """Box of the connected blob, around the most covered pixel, of the pixels covered
+    at least half as often (and at least once): one place, not every box's union."""
+    keep = pm >= max(1.0, 0.5 * top)
+    labels, _ = ndimage.label(keep)
+    at = np.unravel_index(int(np.argmax(pm)), pm.shape)
+    return box_of(labels == labels[at])
+
+
 def _overlap(a: list[float], b: list[float]) -> bool:
     return a[0] < b[2] and b[0] < a[2] and a[1] < b[3] and b[1] < a[3]
 
@@ -185,7 +195,7 @@ def summarise_classes(images: list[ImageSummary], labels: tuple[str, ...], *,
                 pm = place_map(boxes, shape)
                 peak = pm.max()
                 agreement = float(peak / n_small)
-                place_box = box_of(pm >= max(1.0, 0.5 * peak))
+                place_box = _place(pm, peak)
             else:
                 agreement = 0.0
         # The same over the heat's peaks of every correct image: a mark that suffices for
@@ -200,7 +210,7 @@ def summarise_classes(images: list[ImageSummary], labels: tuple[str, ...], *,
                 pm = place_map(peaks, shape)
                 top = pm.max()
                 peak_agreement = float(top / len(right))
-                peak_place = box_of(pm >= max(1.0, 0.5 * top))
+                peak_place = _place(pm, top)
                 at_peak = [im for im in right if im.peak_box is not None
                            and _overlap(im.peak_box, peak_place) and im.peak_on_object is not None]
                 peak_on = _median([im.peak_on_object for im in at_peak])

@@ -51,8 +51,8 @@ from .classes import BOX_MAX_AREA, SMALL_AREA, place_map
 from .errors import UsageError
 from .intervals import (CONFIDENCE, NEGLIGIBLE, Interval, _stat,  # noqa: F401 (re-exported)
                         binomial_bootstrap, paired_bootstrap)
-from .sensitivity import box_of
-from .store import write_json
+from .maps import box_of
+from .store import read_audit, write_json
 
 __all__ = [
     "Interval",
@@ -248,21 +248,7 @@ class CompareResult:
 # --------------------------------------------------------------------------- loading
 
 def _load_audit(folder: str | os.PathLike, option: str) -> tuple[Path, dict]:
-    path = Path(folder)
-    if not path.is_dir():
-        raise UsageError(f"{option} {str(path)!r} is not a folder; pass the --out folder of an audit.")
-    file = path / "audit.json"
-    if not file.is_file():
-        raise UsageError(f"{option} {str(path)!r} has no audit.json; pass the --out folder of a "
-                         f"finished audit.")
-    try:
-        data = json.loads(file.read_text(encoding="utf-8"))
-    except (OSError, ValueError) as exc:
-        raise UsageError(f"{option}: {file} is not readable JSON ({exc}); rerun the audit.") from None
-    if not isinstance(data, dict) or data.get("schema") != SCHEMA or not isinstance(data.get("images"), list):
-        raise UsageError(f"{option}: {file} is not an audit.json of schema {SCHEMA}; rerun the audit "
-                         f"with this version of the tool.")
-    return path, data
+    return Path(folder), read_audit(folder, option=option, schema=SCHEMA)
 
 
 def _listed(audit: dict) -> dict[str, str | None]:

@@ -29,11 +29,11 @@ import numpy as np
 from .classes import ClassSummary, ImageSummary
 from .dataset import ImageEntry, ImageRecord, iter_records
 from .engine import PassEngine
-from .findings import Finding, Thresholds
+from .findings import Finding, Thresholds, motif_candidates
 from .motifs import cut_crop, find_motifs
 from .probes import background_swap_job, removal_job, transplant_job
 from .regions import tighten_region
-from .sensitivity import estimate_object_mask
+from .maps import estimate_object_mask
 
 __all__ = ["add_motif_findings", "confirm_findings", "crop_side"]
 
@@ -92,18 +92,10 @@ def add_motif_findings(findings: list[Finding], classes: list[ClassSummary],
     """Findings with recurring motifs added (or merged into fixed-position ones)."""
     th = thresholds
     out = list(findings)
-    rates = {c.index: (c.metrics.get("small_area_rate") or 0.0) for c in classes}
     side = crop_side(plan, min(classifier.height, classifier.width))
-    for cls in classes:
-        if cls.correct < th.min_correct_images:
-            continue
-        others = [r for i, r in rates.items() if i != cls.index]
-        if rates[cls.index] - (float(np.median(others)) if others else 0.0) < th.motif_margin:
-            continue
+    for cls in motif_candidates(classes, images, thresholds=th):
         small = sorted([im for im in images if im.label == cls.index and im.small],
                        key=lambda im: im.path)
-        if len(small) < 3:
-            continue
         evidence = _motif([(im, im.decisive_box) for im in small], entries, classifier,
                           th=th, side=side, n_images=cls.correct)
         if evidence is None:

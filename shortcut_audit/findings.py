@@ -33,7 +33,12 @@ __all__ = [
     "judge",
     "not_judged",
     "object_part_note",
+    "motif_candidates",
+    "MIN_MOTIF_IMAGES",
 ]
+
+#: A motif is a cluster of at least this many near-alike crops (fewer is a coincidence).
+MIN_MOTIF_IMAGES = 3
 
 FINDING_KINDS = ("localized", "fixed-position", "recurring-motif", "background")
 #: The gates of ``audit --fail-on``: a finding at least suspect, at least confirmed, or none.
@@ -361,3 +366,27 @@ def object_part_note(cls: ClassSummary, classes: list[ClassSummary],
             f"image moves {rate:.0%} of its correct images, and {on:.0%} of those pixels (median) "
             f"lie on the object. A narrow reading of the object, not a shortcut by this audit's "
             f"evidence; worth a look if that part is not what should define the class.")
+
+
+def motif_candidates(classes: list[ClassSummary], images: list[ImageSummary], *,
+                     thresholds: Thresholds | None = None) -> list[ClassSummary]:
+    """The classes whose decisive crops are worth clustering into motifs.
+
+    The recurring-motif rule: a judged class whose small-area rate exceeds the median of
+    the other classes' by ``motif_margin``, with at least :data:`MIN_MOTIF_IMAGES`
+    correct images whose decision hinges on a small region. The clustering itself
+    (motifs.py) and its test (confirm.py) follow.
+    """
+    th = thresholds or Thresholds()
+    rates = {c.index: (c.metrics.get("small_area_rate") or 0.0) for c in classes}
+    out = []
+    for cls in classes:
+        if cls.correct < th.min_correct_images:
+            continue
+        others = [r for i, r in rates.items() if i != cls.index]
+        if rates[cls.index] - (float(np.median(others)) if others else 0.0) < th.motif_margin:
+            continue
+        if sum(1 for im in images if im.label == cls.index and im.small) < MIN_MOTIF_IMAGES:
+            continue
+        out.append(cls)
+    return out

@@ -15,7 +15,8 @@ import numpy as np
 from .dataset import ImageEntry, ImageRecord, Skip, iter_records
 from .engine import PassEngine
 from .errors import AuditError, ImageSkip
-from .sensitivity import ImageStats, estimate_object_mask, image_job
+from .maps import estimate_object_mask
+from .sensitivity import ImageStats, image_job
 
 __all__ = ["analyse_entries"]
 

@@ -39,9 +39,10 @@ from scipy.stats import hypergeom
 
 from .engine import Job
 from .errors import UsageError
+from .findings import Thresholds
 from .motifs import box_pixels
 from .occlusion import Fill, box_weights, fill_image, perturb
-from .sensitivity import erase_object
+from .maps import erase_object
 from .store import to_jsonable
 
 __all__ = [
@@ -169,9 +170,13 @@ class ProbeResult:
                 f"hits cannot exceed trials; got {self.hits}/{self.trials} and "
                 f"{self.control_hits}/{self.control_trials}.")
 
-    def status(self, *, alpha: float = 0.01, min_effect: float = 0.20) -> str:
+    def status(self, *, alpha: float | None = None, min_effect: float | None = None) -> str:
         """``"confirmed"`` when ``p_value < alpha`` and ``effect >= min_effect``, else
-        ``"not-confirmed"``."""
+        ``"not-confirmed"``; by default the thresholds ``confirm_alpha`` and
+        ``confirm_effect`` of :data:`~shortcut_audit.findings.THRESHOLD_TABLE`."""
+        defaults = Thresholds()
+        alpha = defaults.confirm_alpha if alpha is None else alpha
+        min_effect = defaults.confirm_effect if min_effect is None else min_effect
         if self.p_value is not None and self.p_value < alpha and self.effect >= min_effect:
             return "confirmed"
         return "not-confirmed"

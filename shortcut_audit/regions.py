@@ -19,7 +19,7 @@ from typing import Sequence
 import numpy as np
 from scipy import ndimage
 
-from .sensitivity import box_of
+from .maps import box_of
 
 __all__ = ["contrast_map", "tighten_region", "CONTRAST_KEEP", "MIN_CONTRAST", "CONTRAST_OVER_ELSEWHERE"]
 

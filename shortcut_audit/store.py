@@ -26,9 +26,10 @@ from typing import Any
 
 import numpy as np
 
-from .errors import OutputError
+from .errors import DataError, OutputError, UsageError
 
 __all__ = [
+    "read_audit",
     "to_jsonable",
     "dumps",
     "write_bytes_atomic",
@@ -210,3 +211,46 @@ class ResultStore:
 
     def count(self) -> int:
         return sum(1 for p in self.folder.glob("*.json") if p.name != "fingerprint.json")
+
+
+def read_audit(audit_dir: str | os.PathLike, *, option: str | None = None,
+               schema: int | None = None) -> dict:
+    """The audit.json of ``audit_dir`` (the ``--out`` folder of an audit) as a dict.
+
+    The one reader of audit.json, for compare, the report and the pack. ``option`` names
+    the command-line option the folder came from in the messages; ``schema`` also
+    requires that schema number and the per-image list (what compare needs).
+
+    Raises
+    ------
+    UsageError
+        ``audit_dir`` is not a folder or holds no audit.json.
+    DataError
+        audit.json is not valid JSON, not an audit (no ``classes`` / ``findings``), or not
+        of ``schema``.
+    """
+    folder = Path(audit_dir)
+    where = f"{option} {str(folder)!r}" if option else str(folder)
+    if not folder.is_dir():
+        raise UsageError(f"{where} is not a folder; pass the --out folder of an audit "
+                         f"(run `shortcut-audit audit IMAGES --model MODEL --out DIR` first).")
+    path = folder / "audit.json"
+    if not path.is_file():
+        if option:
+            raise UsageError(f"{where} has no audit.json; pass the --out folder of a finished audit.")
+        raise UsageError(f"no audit.json in {folder}; run `shortcut-audit audit IMAGES --model MODEL "
+                         f"--out {folder}` first, then pass that folder.")
+    prefix = f"{option}: " if option else ""
+    try:
+        audit = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, ValueError) as exc:
+        raise DataError(f"{prefix}{path} cannot be read as JSON ({type(exc).__name__}); "
+                        f"rerun the audit to write it again.") from None
+    if not isinstance(audit, dict) or not isinstance(audit.get("classes"), list) \
+            or not isinstance(audit.get("findings"), list):
+        raise DataError(f"{prefix}{path} is not an audit (no classes or findings); "
+                        f"rerun the audit to write it again.")
+    if schema is not None and (audit.get("schema") != schema or not isinstance(audit.get("images"), list)):
+        raise DataError(f"{prefix}{path} is not an audit.json of schema {schema}; rerun the audit "
+                        f"with this version of the tool.")
+    return audit

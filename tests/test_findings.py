@@ -98,3 +98,20 @@ def test_a_class_too_small_to_judge_is_shown_as_not_judged(tmp_path):
                                  "--no-report"])
     words = " ".join(r.output.replace("│", " ").split())   # the table wraps long cells
     assert r.exit_code == 0 and "not judged" in words and "only 1" in words
+
+
+def test_motif_candidates_need_a_margin_and_three_small_images():
+    # a: small-area rate 0.8 against others' median 0.1 (margin 0.7 >= 0.15) with 3
+    # small images: clustered. b: 0.2 - 0.45 < 0.15: not. c: margin, but 2 small images.
+    from shortcut_audit.findings import MIN_MOTIF_IMAGES, motif_candidates
+
+    def im(label, i, area):
+        return ImageSummary(path=f"{label}/{i}.png", label=label, predicted=label, confidence=0.9,
+                            label_score=0.9, concentration=0.1, gini=0.5, decisive_area=area,
+                            decisive_box=[0, 0, 0.1, 0.1], peak_box=None, deletion_area=0.1,
+                            insertion_area=0.5)
+    classes = [summary(0, "a", small_area_rate=0.8), summary(1, "b", small_area_rate=0.2),
+               summary(2, "c", small_area_rate=0.8), summary(3, "d", small_area_rate=0.1)]
+    images = [im(0, i, 0.01) for i in range(3)] + [im(2, i, 0.01) for i in range(2)]
+    assert MIN_MOTIF_IMAGES == 3
+    assert [c.name for c in motif_candidates(classes, images)] == ["a"]

@@ -15,40 +15,10 @@ from pathlib import Path, PurePosixPath
 
 import numpy as np
 
-from ..errors import DataError, ImageSkip, UsageError
-from ..store import ResultStore, inside
+from ..errors import ImageSkip, UsageError
+from ..store import ResultStore, inside, read_audit  # read_audit: the one audit.json reader
 
 __all__ = ["AuditFiles", "read_audit", "model_input"]
-
-
-def read_audit(audit_dir: str | os.PathLike) -> dict:
-    """The audit.json of ``audit_dir`` as a dict.
-
-    Raises
-    ------
-    UsageError
-        ``audit_dir`` is not a folder or holds no audit.json.
-    DataError
-        audit.json is not valid JSON or not an audit (no ``classes`` / ``findings``).
-    """
-    folder = Path(audit_dir)
-    if not folder.is_dir():
-        raise UsageError(f"{folder} is not a folder; pass the --out folder of a scan "
-                         f"(run `shortcut-audit audit IMAGES --model MODEL --out DIR` first).")
-    path = folder / "audit.json"
-    if not path.is_file():
-        raise UsageError(f"no audit.json in {folder}; run `shortcut-audit audit IMAGES --model MODEL "
-                         f"--out {folder}` first, then pass that folder.")
-    try:
-        audit = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, ValueError) as exc:
-        raise DataError(f"{path} cannot be read as JSON ({type(exc).__name__}); "
-                        f"rerun the scan to write it again.") from None
-    if not isinstance(audit, dict) or not isinstance(audit.get("classes"), list) \
-            or not isinstance(audit.get("findings"), list):
-        raise DataError(f"{path} is not an audit (no classes or findings); "
-                        f"rerun the scan to write it again.")
-    return audit
 
 
 def model_input(audit: dict) -> dict:
