@@ -10,6 +10,7 @@ image by image (:class:`ClassAccumulator`), so no class's heatmaps are held at o
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -57,6 +58,13 @@ class ImageSummary:
     decisive_on_object: float | None = None   # share of the decisive pixels on the object
     decisive_object_cover: float | None = None  # share of the object the decisive pixels cover
     peak_on_object: float | None = None       # share of the peak box on the object
+
+    @classmethod
+    def from_record(cls, record: dict) -> "ImageSummary":
+        """The summary of an image's stored record (the fields it names; extra keys such
+        as the probabilities and the curves stay in the store)."""
+        names = {f.name for f in dataclasses.fields(cls)}
+        return cls(**{k: v for k, v in record.items() if k in names})
 
     @property
     def correct(self) -> bool:

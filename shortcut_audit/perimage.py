@@ -8,6 +8,7 @@ cluster.py do not import each other both ways. ``settings`` is a
 
 from __future__ import annotations
 
+import dataclasses
 from typing import Sequence
 
 import numpy as np
@@ -21,24 +22,20 @@ from .sensitivity import ImageStats, image_job
 __all__ = ["analyse_entries"]
 
 
+#: What an image's record keeps of its ImageStats: every measured field but the
+#: heatmap (stored as an array), the scores (kept as probabilities) and the scratch.
+_NOT_STORED = frozenset({"target", "predicted", "base_scores", "heatmap", "extra"})
+
+
 def _record_from_stats(path: str, label: int, stats: ImageStats, probs: np.ndarray) -> dict:
+    """The JSON-able record of one image: the one place an ImageStats becomes what the
+    store keeps (:meth:`~shortcut_audit.classes.ImageSummary.from_record` reads it back)."""
     predicted = int(np.argmax(probs))
-    return {
-        "label": label, "predicted": predicted, "confidence": float(probs[predicted]),
-        "label_score": float(stats.base_scores[stats.target]),
-        "probs": probs, "concentration": stats.concentration, "gini": stats.gini,
-        "decisive_area": stats.decisive_area, "decisive_box": stats.decisive_box,
-        "decisive_score": stats.decisive_score, "peak_box": stats.peak_box,
-        "deletion": stats.deletion, "insertion": stats.insertion,
-        "deletion_area": stats.deletion_area, "insertion_area": stats.insertion_area,
-        "background_share": stats.background_share, "mask_source": stats.mask_source,
-        "survives_object_erased": stats.survives_object_erased,
-        "survives_background_erased": stats.survives_background_erased,
-        "object_erased_prediction": stats.object_erased_prediction,
-        "decisive_on_object": stats.decisive_on_object, "peak_on_object": stats.peak_on_object,
-        "decisive_object_cover": stats.decisive_object_cover,
-        "passes": stats.passes,
-    }
+    record = {"label": label, "predicted": predicted, "confidence": float(probs[predicted]),
+              "label_score": float(stats.base_scores[stats.target]), "probs": probs}
+    record.update({f.name: getattr(stats, f.name) for f in dataclasses.fields(stats)
+                   if f.name not in _NOT_STORED})
+    return record
 
 
 def _crop(pixels: np.ndarray, box: list[float] | None) -> np.ndarray:

@@ -194,11 +194,6 @@ def _source(e: ImageEntry) -> list:
     return sig
 
 
-def _summary_from_record(rec: dict) -> ImageSummary:
-    fields = {f.name for f in dataclasses.fields(ImageSummary)}
-    return ImageSummary(**{k: rec[k] for k in fields if k in rec})
-
-
 def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, *,
          out: str | os.PathLike | None = None,
          masks: str | os.PathLike | None = None,
@@ -339,7 +334,7 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
             skipped.append(Skip(path=e.path, reason=record["skipped"]))
             continue
         record = dict(record, path=e.path)
-        im = _summary_from_record(record)
+        im = ImageSummary.from_record(record)
         summaries.append(im)
         if record.get("probs") is not None:
             known_scores[e.path] = np.asarray(record["probs"], dtype=np.float32)
