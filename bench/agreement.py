@@ -52,6 +52,7 @@ sys.path.insert(0, str(HERE))
 import builders  # noqa: E402
 
 import shortcut_audit as sa  # noqa: E402
+from shortcut_audit.maps import box_iou as _box_iou  # noqa: E402
 from shortcut_audit.model import ModelConfig, read_model_config  # noqa: E402
 from shortcut_audit.occlusion import GridPlan, plan_from_dict  # noqa: E402
 from shortcut_audit.scan import ScanSettings  # noqa: E402
@@ -207,13 +208,11 @@ def ladder_step(area: float | None) -> int:
 
 
 def box_iou(a, b) -> float:
+    """maps.box_iou, with no box on either side counted as agreement (NaN: left out)
+    and a box on one side only as none."""
     if a is None or b is None:
         return float("nan") if a is None and b is None else 0.0
-    x0, y0 = max(a[0], b[0]), max(a[1], b[1])
-    x1, y1 = min(a[2], b[2]), min(a[3], b[3])
-    inter = max(0.0, x1 - x0) * max(0.0, y1 - y0)
-    union = (a[2] - a[0]) * (a[3] - a[1]) + (b[2] - b[0]) * (b[3] - b[1]) - inter
-    return inter / union if union > 0 else 1.0
+    return _box_iou(a, b)
 
 
 def run_audit(s: AuditSet, plan, out: Path, *, batch: int, threads: int = 1):

@@ -366,21 +366,12 @@ def memory(cfg: dict, models: dict, work: Path) -> dict:
 
 # ------------------------------------------------------------------ adaptive plan
 
-def box_iou(a, b) -> float | None:
-    if a is None or b is None:
-        return None
-    ix = max(0.0, min(a[2], b[2]) - max(a[0], b[0]))
-    iy = max(0.0, min(a[3], b[3]) - max(a[1], b[1]))
-    inter = ix * iy
-    union = (a[2] - a[0]) * (a[3] - a[1]) + (b[2] - b[0]) * (b[3] - b[1]) - inter
-    return inter / union if union > 0 else None
-
-
 def adaptive(cfg: dict, models: dict, images: Path, clfs: dict, quick: bool) -> dict:
     from scipy.stats import spearmanr
 
     from shortcut_audit.dataset import load_image
     from shortcut_audit.engine import PassEngine
+    from shortcut_audit.maps import box_iou
     from shortcut_audit.occlusion import AdaptivePlan, GridPlan
     from shortcut_audit.scan import DEFAULT_FILL, DEFAULT_PLAN
     from shortcut_audit.sensitivity import image_job

@@ -42,6 +42,7 @@ import scenes  # noqa: E402
 from suite import spec_of  # noqa: E402
 
 import shortcut_audit  # noqa: E402
+from shortcut_audit.maps import box_iou  # noqa: E402
 
 STRONG = 0.5
 
@@ -50,14 +51,7 @@ def load_truth(path: Path = PLANTED / "truth.json") -> dict:
     return json.loads(path.read_text(encoding="utf-8"))
 
 
-def iou(a, b) -> float | None:
-    if a is None or b is None:
-        return None
-    ix = max(0.0, min(a[2], b[2]) - max(a[0], b[0]))
-    iy = max(0.0, min(a[3], b[3]) - max(a[1], b[1]))
-    inter = ix * iy
-    union = (a[2] - a[0]) * (a[3] - a[1]) + (b[2] - b[0]) * (b[3] - b[1]) - inter
-    return inter / union if union > 0 else 0.0
+iou = box_iou   # the library's, so the scoreboard and the audit measure boxes alike
 
 
 def _run_audit(images, model_path, masks, out):

@@ -19,7 +19,7 @@ from scipy import ndimage
 
 from .errors import ImageSkip, UsageError
 
-__all__ = ["Heatmap", "check_image", "check_finite", "concentration", "gini", "heat_order", "box_of",
+__all__ = ["Heatmap", "check_image", "check_finite", "concentration", "gini", "heat_order", "box_of", "box_iou",
            "peak_box", "curve_area", "background_share", "erase_object", "erase_background",
            "estimate_object_mask"]
 
@@ -141,6 +141,21 @@ def box_of(mask: np.ndarray) -> list[float] | None:
         return None
     h, w = mask.shape
     return [float(cols[0] / w), float(rows[0] / h), float((cols[-1] + 1) / w), float((rows[-1] + 1) / h)]
+
+
+def box_iou(a, b) -> float | None:
+    """Intersection over union of two boxes ``[x0, y0, x1, y1]`` (None when either is).
+
+    >>> box_iou([0, 0, 0.5, 0.5], [0.25, 0.25, 0.75, 0.75])  # 1/16 over 7/16
+    0.14285714285714285
+    """
+    if a is None or b is None:
+        return None
+    ix = max(0.0, min(a[2], b[2]) - max(a[0], b[0]))
+    iy = max(0.0, min(a[3], b[3]) - max(a[1], b[1]))
+    inter = ix * iy
+    union = (a[2] - a[0]) * (a[3] - a[1]) + (b[2] - b[0]) * (b[3] - b[1]) - inter
+    return inter / union if union > 0 else 0.0
 
 
 def peak_box(values: np.ndarray, *, share: float = 0.05) -> list[float] | None:
