@@ -516,7 +516,7 @@ def compare(
 def pack(
     audit_dir: Path = typer.Argument(..., help="A folder an audit wrote (holds audit.json).", exists=True, file_okay=False),
     out_path: Path = typer.Option(..., "--out", "-o", help="A folder, or a file ending in .zip."),
-    finding: Optional[str] = typer.Option(None, "--finding", help="Only this finding (e.g. F2) \\[default: all]."),
+    finding: Optional[str] = typer.Option(None, "--finding", help="Only this finding (e.g. F2), whatever its status \\[default: every confirmed one]."),
     images: Optional[Path] = typer.Option(None, "--images", help="Where the images are now, if they moved.",
                                           exists=True, file_okay=False),
     leads: bool = typer.Option(False, "--leads", help="Also pack the findings no test confirmed, marked as "
@@ -564,7 +564,7 @@ def demo(
     table.add_column("model")
     classes = [c.name for c in result["audits"]["baseline"].classes]
     for name in classes:
-        table.add_column(name)
+        table.add_column(name, overflow="fold")
     for model, audit in result["audits"].items():
         cells = []
         for name in classes:
