@@ -39,7 +39,7 @@ def test_help_has_examples(command):
     ("audit", "onnxruntime threads [default: all cores]"),
     ("audit", "Grid step [default: half the patch]"),
     ("heatmap", "Class to explain (name) [default: the prediction]"),
-    ("pack", "Only this finding (e.g. F2) [default: all]"),
+    ("pack", "[default: every confirmed one]"),
 ])
 def test_help_shows_the_defaults_written_in_brackets(command, shown):
     # rich reads "[...]" as markup and would drop it; the help escapes it
