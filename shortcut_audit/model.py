@@ -22,13 +22,6 @@ This is the only module that imports onnxruntime (and onnx, to check a file befo
 onnxruntime reads it). Errors are :class:`~shortcut_audit.errors.ModelError` (the
 model cannot be used) or :class:`~shortcut_audit.errors.UsageError` (an option value is
 wrong, a file does not exist), each one line that says what to do.
-
-Examples
---------
->>> parse_size("224x224")
-(224, 224)
->>> ModelConfig(mean=0.5).merged_over(ModelConfig(mean=(0.1, 0.2, 0.3), std=0.25)).mean
-(0.5,)
 """
 
 from __future__ import annotations
