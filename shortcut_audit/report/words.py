@@ -248,8 +248,8 @@ def test_sentence(finding: dict, *, labels: Sequence[str] = ()) -> str | None:
                 f"turned {chits} of {cn} ({pct(crate)}).")
     elif counts and kind == "background-swap":
         text = (f"Putting {n} objects of other classes onto backgrounds of {cls} images turned {hits} "
-                f"of them ({pct(rate)}) into {cls}; onto other classes' backgrounds, {chits} of {cn} "
-                f"({pct(crate)}).")
+                f"of them ({pct(rate)}) into {cls}; onto backgrounds of a third class (neither "
+                f"{cls} nor their own), {chits} of {cn} ({pct(crate)}).")
     elif _finite(rate) and _finite(crate):
         text = (f"{pct(rate)} of the test images moved to {cls}, against {pct(crate)} in the "
                 f"control arm.")
