@@ -24,7 +24,7 @@ LAYERS = {
              "motifs", "probes", "confirm", "cost", "intervals", "options", "listing", "dataset",
              "model"},
     # runs that return a result and keep their JSON through store.py; they draw nothing
-    "pipeline": {"perimage", "scan", "cluster", "compare", "heatmap"},
+    "pipeline": {"perimage", "scan", "cluster", "comparison", "compare", "heatmap"},
     "writers": {"report", "pack"},
     "front": {"cli", "showcase", "demo", ""},          # "" is the package's __init__ (the facade)
 }

@@ -282,7 +282,7 @@ def render_compare_page(result, figures: dict | None = None) -> str:
         From :func:`compare_figures`; without it the page has no figures.
     """
     from .._version import __version__
-    from ..compare import CONFIDENCE, VERDICTS
+    from ..comparison import CONFIDENCE, VERDICTS
 
     figures = figures or {"examples": [], "class_means": [], "missing": []}
     examples: dict[int, list[dict]] = {}
