@@ -67,3 +67,18 @@ def test_demo_writes_reports_and_the_pack(demo):
     assert r["pack"] is not None and r["pack"].exists()
     truth = json.loads((out / "baseline" / "audit.json").read_text())
     assert truth["dataset"]["audited"] == 144 and truth["skipped"] == []
+
+
+
+def test_demo_audits_match_the_recorded_ones(demo):
+    # Reference: tests/golden/demo_audits.json, the three demo audits as recorded when the
+    # rules were last changed on purpose (findings, statuses, regions, every class metric).
+    # A refactor must leave them alone; a deliberate rule change rewrites that file with
+    # `python tests/golden_audits.py` (DEVELOPERS.md, "Testing").
+    from golden_audits import GOLDEN, differences, summary
+
+    golden = json.loads(GOLDEN.read_text(encoding="utf-8"))
+    out, _ = demo
+    for model, want in golden.items():
+        got = summary(json.loads((out / model / "audit.json").read_text(encoding="utf-8")))
+        assert differences(want, got, model) is None
