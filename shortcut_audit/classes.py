@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage
 
-from .maps import box_of
+from .maps import box_of, boxes_overlap
 
 __all__ = [
     "ImageSummary",
@@ -147,10 +147,6 @@ def _place(pm: np.ndarray, top: float) -> list[float] | None:
     return box_of(labels == labels[at])
 
 
-def _overlap(a: list[float], b: list[float]) -> bool:
-    return a[0] < b[2] and b[0] < a[2] and a[1] < b[3] and b[1] < a[3]
-
-
 def _median(values: list[float]) -> float | None:
     return float(np.median(values)) if values else None
 
@@ -220,7 +216,7 @@ def summarise_classes(images: list[ImageSummary], labels: tuple[str, ...], *,
                 peak_agreement = float(top / len(right))
                 peak_place = _place(pm, top)
                 at_peak = [im for im in right if im.peak_box is not None
-                           and _overlap(im.peak_box, peak_place) and im.peak_on_object is not None]
+                           and boxes_overlap(im.peak_box, peak_place) and im.peak_on_object is not None]
                 peak_on = _median([im.peak_on_object for im in at_peak])
         masked = [im for im in members if im.background_share is not None]
         survival = _rate([bool(im.survives_object_erased) for im in right

@@ -30,7 +30,7 @@ from .engine import SCORES
 from .errors import AuditError, UsageError
 from .findings import FAIL_ON, Thresholds, parse_threshold_overrides, read_thresholds
 from .options import (COLORS, LAYOUTS, OUTPUT_KINDS, RESIZES, ModelConfig, parse_numbers, parse_size, read_labels,
-                      read_model_config)
+                      read_model_config, some_names)
 from .occlusion import FILL_KINDS, PLAN_KINDS, Fill, GridPlan, RandomPatchPlan, SmoothMaskPlan
 
 app = typer.Typer(
@@ -321,8 +321,7 @@ def inspect_model(
         ("batch", "dynamic" if inp["dynamic_batch"] else f"fixed at {inp['fixed_batch']}"),
         ("preprocessing", f"x * {inp['scale']:.6g}, mean {inp['mean']}, std {inp['std']}, resize {inp['resize']}"),
         ("output", f"{info['output']['name']}: {info['output']['kind']}, {info['output']['n_classes']} classes"),
-        ("labels", ", ".join(info["labels"][:20]) + (f", ... and {len(info['labels']) - 20} more"
-                                                      if len(info["labels"]) > 20 else "")),
+        ("labels", some_names(info["labels"], 20)),
         ("batch size", str(info["batch_size"])),
         ("speed", f"{info['passes_per_second']:,.0f} passes/s (random inputs, this machine)"),
         ("sha256", info["sha256"]),

@@ -29,7 +29,7 @@ import numpy as np
 from .classes import ClassSummary, ImageSummary
 from .dataset import ImageEntry, ImageRecord, iter_records
 from .engine import PassEngine
-from .findings import Finding, Thresholds, motif_candidates
+from .findings import MIN_MOTIF_IMAGES, Finding, Thresholds, motif_candidates
 from .motifs import cut_crop, find_motifs
 from .probes import background_swap_job, removal_job, transplant_job
 from .regions import tighten_region
@@ -149,7 +149,7 @@ def _small_things_in_backgrounds(findings: list[Finding], classes: list[ClassSum
         mine = sorted([im for im in images if im.label == cls.index and im.correct
                        and im.peak_box is not None and im.peak_on_object is not None
                        and im.peak_on_object < th.object_share], key=lambda im: im.path)
-        if len(mine) < 3:
+        if len(mine) < MIN_MOTIF_IMAGES:
             continue
         evidence = _motif([(im, im.peak_box) for im in mine], entries, classifier,
                           th=th, side=side, n_images=cls.correct)
@@ -218,6 +218,12 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
         plans.append((f, own_s, others_s))
         wanted.update(im.path for im in own_s + others_s)
     recs = _records([entries[p] for p in sorted(wanted)], classifier)
+    masks: dict[str, np.ndarray | None] = {}      # one mask per image, however many tests use it
+
+    def mask_of(rec: ImageRecord) -> np.ndarray | None:
+        if rec.path not in masks:
+            masks[rec.path] = _mask_of(rec)
+        return masks[rec.path]
 
     jobs = []
     test_sources: dict[int, list[str]] = {}     # per test: the image path of each source index
@@ -228,12 +234,12 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
         job_seed = int(seed) * 1009 + k
         if not own_r or not oth_r:
             continue
-        targets = [(r.pixels, _mask_of(r), im.label) for im, r in oth_r]
+        targets = [(r.pixels, mask_of(r), im.label) for im, r in oth_r]
         test_targets[k] = [im.path for im, _ in oth_r]
         if f.kind == "background":
             def usable(t):
                 return t[1] is not None and t[1].any() and not t[1].all()
-            own_all = [((r.pixels, _mask_of(r), im.label), im.path) for im, r in own_r]
+            own_all = [((r.pixels, mask_of(r), im.label), im.path) for im, r in own_r]
             oth_all = [(t, im.path) for t, (im, _) in zip(targets, oth_r)]
             own_m = [t for t, _ in own_all if usable(t)]
             oth_m = [t for t, _ in oth_all if usable(t)]
@@ -261,7 +267,7 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
             if medoid is None:
                 continue
             sources = [(medoid.pixels, f.evidence["medoid_box"])]
-            control_masks = [_mask_of(medoid)]
+            control_masks = [mask_of(medoid)]
             test_sources[k] = [f.evidence["medoid"]]
             boxed = [(im, r) for im, r in own_r if im.decisive_box is not None]
             boxes = [im.decisive_box for im, _ in boxed]
@@ -272,7 +278,7 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
             if not boxed:
                 continue
             sources = [(r.pixels, im.decisive_box) for im, r in boxed]
-            control_masks = [_mask_of(r) for _, r in boxed]
+            control_masks = [mask_of(r) for _, r in boxed]
             test_sources[k] = [im.path for im, _ in boxed]
             boxes = [im.decisive_box for im, _ in boxed]
             own_r = boxed

@@ -40,6 +40,7 @@ import numpy as np
 from PIL import Image, ImageOps, UnidentifiedImageError
 
 from shortcut_audit.errors import ImageSkip, UsageError
+from shortcut_audit.options import RESIZES
 
 __all__ = [
     "ImageEntry",
@@ -64,7 +65,7 @@ a 9459 x 9459 image, 256 MB as RGB at 24 bits). Larger images are refused from t
 header, before any pixel is decoded.
 """
 
-RESIZE_MODES: tuple[str, ...] = ("stretch", "crop", "pad")
+RESIZE_MODES: tuple[str, ...] = RESIZES
 """How an image meets the model's input size; see :func:`fit`."""
 
 IMAGE_EXTENSIONS: tuple[str, ...] = (

@@ -21,6 +21,7 @@ import numpy as np
 
 from .classes import SMALL_AREA, ClassSummary, ImageSummary
 from .errors import UsageError
+from .maps import boxes_overlap
 
 __all__ = [
     "FAIL_ON",
@@ -192,10 +193,11 @@ def _evidence(statistic: str, value: float, threshold: float, others: float, mar
     return out
 
 
-def _overlaps(box: list[float] | None, region: list[float] | None) -> bool:
-    if box is None or region is None:
-        return False
-    return box[0] < region[2] and region[0] < box[2] and box[1] < region[3] and region[1] < box[3]
+def _finding(cls: ClassSummary, kind: str, region: list[float] | None, members: list[ImageSummary],
+             max_examples: int, evidence: dict) -> Finding:
+    """A suspect finding on ``cls``, its first ``max_examples`` members as examples."""
+    return Finding(id="", class_name=cls.name, class_index=cls.index, kind=kind, region=region,
+                   evidence=evidence, examples=tuple(im.path for im in members[:max_examples]))
 
 
 def judge(classes: list[ClassSummary], images: list[ImageSummary], *,
@@ -235,39 +237,27 @@ def judge(classes: list[ClassSummary], images: list[ImageSummary], *,
                     and peak_agree - peak_others >= th.fixed_margin
                     and peak_on is not None and peak_on < th.object_share)
         if fixed:
-            members = [im for im in mine if im.small and _overlaps(im.decisive_box, cls.place_box)]
+            members = [im for im in mine if im.small and boxes_overlap(im.decisive_box, cls.place_box)]
             members.sort(key=lambda im: (im.decisive_area, im.path))
-            found.append(Finding(
-                id="", class_name=cls.name, class_index=cls.index, kind="fixed-position",
-                region=cls.place_box,
-                evidence=_evidence("box_agreement", agreement, th.fixed_agreement, agree_others,
-                                   th.fixed_margin, small_area_rate=small_rate,
-                                   small_area_threshold=th.localized_rate,
-                                   images=len(mine), agreeing_images=len(members),
-                                   small_images=sum(1 for im in mine if im.small)),
-                examples=tuple(im.path for im in members[:max_examples])))
+            found.append(_finding(cls, "fixed-position", cls.place_box, members, max_examples, _evidence(
+                "box_agreement", agreement, th.fixed_agreement, agree_others, th.fixed_margin,
+                small_area_rate=small_rate, small_area_threshold=th.localized_rate,
+                images=len(mine), agreeing_images=len(members),
+                small_images=sum(1 for im in mine if im.small))))
         elif by_peaks:
             fixed = True
-            members = [im for im in mine if _overlaps(im.peak_box, cls.peak_place_box)]
+            members = [im for im in mine if boxes_overlap(im.peak_box, cls.peak_place_box)]
             members.sort(key=lambda im: (-(im.label_score or 0.0), im.path))
-            found.append(Finding(
-                id="", class_name=cls.name, class_index=cls.index, kind="fixed-position",
-                region=cls.peak_place_box,
-                evidence=_evidence("peak_agreement", peak_agree, th.fixed_agreement, peak_others,
-                                   th.fixed_margin, peak_on_object=peak_on,
-                                   object_share_threshold=th.object_share,
-                                   small_area_rate=small_rate, images=len(mine),
-                                   agreeing_images=len(members)),
-                examples=tuple(im.path for im in members[:max_examples])))
+            found.append(_finding(cls, "fixed-position", cls.peak_place_box, members, max_examples, _evidence(
+                "peak_agreement", peak_agree, th.fixed_agreement, peak_others, th.fixed_margin,
+                peak_on_object=peak_on, object_share_threshold=th.object_share,
+                small_area_rate=small_rate, images=len(mine), agreeing_images=len(members))))
         elif localized:
             members = sorted([im for im in mine if im.small], key=lambda im: (im.decisive_area, im.path))
-            found.append(Finding(
-                id="", class_name=cls.name, class_index=cls.index, kind="localized", region=None,
-                evidence=_evidence("small_area_rate", small_rate, th.localized_rate, small_others,
-                                   th.localized_margin, small_area=SMALL_AREA, images=len(mine),
-                                   flipping_images=len(members),
-                                   median_decisive_area=m["median_decisive_area"]),
-                examples=tuple(im.path for im in members[:max_examples])))
+            found.append(_finding(cls, "localized", None, members, max_examples, _evidence(
+                "small_area_rate", small_rate, th.localized_rate, small_others, th.localized_margin,
+                small_area=SMALL_AREA, images=len(mine), flipping_images=len(members),
+                median_decisive_area=m["median_decisive_area"])))
         if fixed:
             fixed_classes.add(cls.index)
     # Backgrounds, judged after the marks: a fixed-position class's heat outside the
@@ -305,9 +295,7 @@ def judge(classes: list[ClassSummary], images: list[ImageSummary], *,
                       masked_images=m["masked_images"], estimated_masks=m["estimated_masks"],
                       mask="estimated" if m["estimated_masks"] == m["masked_images"]
                       else ("given" if m["estimated_masks"] == 0 else "given and estimated"))
-            found.append(Finding(
-                id="", class_name=cls.name, class_index=cls.index, kind="background", region=None,
-                evidence=ev, examples=tuple(im.path for im in members[:max_examples])))
+            found.append(_finding(cls, "background", None, members, max_examples, ev))
     return found
 
 

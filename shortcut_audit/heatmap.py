@@ -20,6 +20,7 @@ from .engine import PassEngine
 from .errors import UsageError
 from .model import ModelConfig, OnnxClassifier
 from .occlusion import Fill, Plan, pass_count
+from .options import some_names
 from .scan import DEFAULT_FILL, DEFAULT_PLAN
 from .sensitivity import heatmap_job
 from .store import write_bytes_atomic, write_json
@@ -77,7 +78,7 @@ def run_heatmap(image: str | os.PathLike, model: str | os.PathLike | OnnxClassif
             t_index = clf.labels.index(target)
         else:
             raise UsageError(f"--target {target!r} is not one of the model's labels "
-                             f"({', '.join(clf.labels[:20])}{', ...' if len(clf.labels) > 20 else ''}); pass one of them.")
+                             f"({some_names(clf.labels, 20)}); pass one of them.")
         if not 0 <= t_index < clf.n_classes:
             raise UsageError(f"--target {t_index} is out of range for {clf.n_classes} classes.")
     total = pass_count(plan, clf.height, clf.width) + 1

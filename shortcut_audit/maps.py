@@ -12,6 +12,7 @@ this module, so the arrow between the two goes one way.
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -19,7 +20,7 @@ from scipy import ndimage
 
 from .errors import ImageSkip, UsageError
 
-__all__ = ["Heatmap", "check_image", "check_finite", "concentration", "gini", "heat_order", "box_of", "box_iou",
+__all__ = ["Heatmap", "check_image", "check_finite", "concentration", "gini", "heat_order", "box_of", "box_pixels", "box_iou", "boxes_overlap",
            "peak_box", "curve_area", "background_share", "erase_object", "erase_background",
            "estimate_object_mask"]
 
@@ -141,6 +142,39 @@ def box_of(mask: np.ndarray) -> list[float] | None:
         return None
     h, w = mask.shape
     return [float(cols[0] / w), float(rows[0] / h), float((cols[-1] + 1) / w), float((rows[-1] + 1) / h)]
+
+
+def box_pixels(box: Sequence[float], height: int, width: int) -> tuple[int, int, int, int]:
+    """A box in fractions as half-open pixel bounds ``(row0, row1, col0, col1)``.
+
+    Bounds are rounded to the nearest pixel, clipped to the image, and at least one
+    pixel wide; boxes from :func:`box_of` map back exactly.
+
+    >>> box_pixels([0.5, 0.25, 1.0, 0.75], 4, 4)
+    (1, 3, 2, 4)
+    """
+    if len(box) != 4:
+        raise UsageError(f"a box must be [x0, y0, x1, y1] in fractions; got {list(box)!r}.")
+    x0, y0, x1, y1 = (float(v) for v in box)
+    if not all(math.isfinite(v) for v in (x0, y0, x1, y1)) or x1 < x0 or y1 < y0:
+        raise UsageError(
+            f"a box must be [x0, y0, x1, y1] with x0 <= x1 and y0 <= y1; got {list(box)!r}.")
+    r0 = min(max(int(round(y0 * height)), 0), height - 1)
+    c0 = min(max(int(round(x0 * width)), 0), width - 1)
+    r1 = min(max(int(round(y1 * height)), r0 + 1), height)
+    c1 = min(max(int(round(x1 * width)), c0 + 1), width)
+    return r0, r1, c0, c1
+
+
+def boxes_overlap(a, b) -> bool:
+    """Whether two boxes ``[x0, y0, x1, y1]`` share any area (False when either is None).
+
+    >>> boxes_overlap([0, 0, 0.5, 0.5], [0.25, 0.25, 1, 1]), boxes_overlap([0, 0, 0.5, 0.5], None)
+    (True, False)
+    """
+    if a is None or b is None:
+        return False
+    return a[0] < b[2] and b[0] < a[2] and a[1] < b[3] and b[1] < a[3]
 
 
 def box_iou(a, b) -> float | None:

@@ -29,6 +29,7 @@ from skimage.feature import hog
 from skimage.transform import resize
 
 from .errors import UsageError
+from .maps import box_pixels
 
 __all__ = [
     "Crop",
@@ -125,28 +126,6 @@ class Motif:
 
 
 # ------------------------------------------------------------------------ crops
-
-def box_pixels(box: Sequence[float], height: int, width: int) -> tuple[int, int, int, int]:
-    """A box in fractions as half-open pixel bounds ``(row0, row1, col0, col1)``.
-
-    Bounds are rounded to the nearest pixel, clipped to the image, and at least one
-    pixel wide; boxes from :func:`~shortcut_audit.sensitivity.box_of` map back exactly.
-
-    >>> box_pixels([0.5, 0.25, 1.0, 0.75], 4, 4)
-    (1, 3, 2, 4)
-    """
-    if len(box) != 4:
-        raise UsageError(f"a box must be [x0, y0, x1, y1] in fractions; got {list(box)!r}.")
-    x0, y0, x1, y1 = (float(v) for v in box)
-    if not all(math.isfinite(v) for v in (x0, y0, x1, y1)) or x1 < x0 or y1 < y0:
-        raise UsageError(
-            f"a box must be [x0, y0, x1, y1] with x0 <= x1 and y0 <= y1; got {list(box)!r}.")
-    r0 = min(max(int(round(y0 * height)), 0), height - 1)
-    c0 = min(max(int(round(x0 * width)), 0), width - 1)
-    r1 = min(max(int(round(y1 * height)), r0 + 1), height)
-    c1 = min(max(int(round(x1 * width)), c0 + 1), width)
-    return r0, r1, c0, c1
-
 
 def _side_pixels(value: int | float, side: int, name: str) -> int:
     if isinstance(value, bool) or not isinstance(value, (int, float)) or value <= 0:

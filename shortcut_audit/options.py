@@ -23,7 +23,7 @@ import math
 import os
 import re
 import tomllib
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -44,6 +44,7 @@ __all__ = [
     "parse_numbers",
     "read_labels",
     "read_model_config",
+    "some_names",
 ]
 
 #: Key of the ONNX ``metadata_props`` entry that holds the model's settings as JSON.
@@ -407,3 +408,14 @@ def read_model_config(path: str | os.PathLike) -> ModelConfig:
             f"--model-config file {path.name} is not valid UTF-8 TOML ({exc}); fix the file."
         ) from None
     return _config_from_mapping(data, source=path.name, base_dir=path.parent, error=UsageError)
+
+
+def some_names(names: Sequence[str], k: int = 8, *, note: str = "") -> str:
+    """The first ``k`` names and how many more, for one line (a 1,000-class model's labels).
+
+    >>> some_names(["a", "b", "c"], 2)
+    'a, b, ... and 1 more'
+    """
+    names = [str(n) for n in names]
+    more = f", ... and {len(names) - k:,} more{note}" if len(names) > k else ""
+    return ", ".join(names[:k]) + more

@@ -40,9 +40,8 @@ from scipy.stats import hypergeom
 from .engine import Job
 from .errors import UsageError
 from .findings import Thresholds
-from .motifs import box_pixels
 from .occlusion import Fill, box_weights, fill_image, perturb
-from .maps import erase_object
+from .maps import box_pixels, erase_object
 from .store import to_jsonable
 
 __all__ = [

