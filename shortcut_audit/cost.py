@@ -25,7 +25,7 @@ from dataclasses import dataclass, field
 from typing import Mapping, Sequence
 
 from .occlusion import AdaptivePlan, Plan, pass_count
-from .sensitivity import CURVE_STEPS, DECISIVE_BISECT, DECISIVE_LADDER
+from .sensitivity import DECISIVE_BISECT, ladder_keys
 
 __all__ = ["CostEstimate", "image_passes", "estimate_cost", "ENGINE_SHARE", "FIXED_SECONDS"]
 
@@ -39,18 +39,8 @@ FIXED_SECONDS = 2.0
 
 
 def _ladder_passes(height: int, width: int, *, curves: bool = True) -> int:
-    """The distinct images of the ladder and the curves (as image_job deduplicates them)."""
-    n = height * width
-
-    def count(share: float) -> int:
-        return int(round(share * n))
-
-    keys = [("hide", count(s)) for s in DECISIVE_LADDER]
-    if curves:
-        xs = [i / CURVE_STEPS for i in range(CURVE_STEPS + 1)]
-        keys += [("hide", count(x)) for x in xs[1:]]
-        keys += [("show", count(x)) if count(x) > 0 else ("hide", n) for x in xs[:-1]]
-    return len({k for k in keys if k != ("hide", 0)})
+    """The distinct images of the ladder and the curves (as image_job scores them)."""
+    return len({k for k in ladder_keys(height * width, curves=curves) if k != ("hide", 0)})
 
 
 def image_passes(plan: Plan, height: int, width: int, *, masks: bool = True,

@@ -362,6 +362,29 @@ class ImageStats:
     extra: dict = field(default_factory=dict)
 
 
+def ladder_keys(n_pixels: int, *, curves: bool = True) -> list[tuple[str, int]]:
+    """The images of the decisive-area ladder and the curves, in order, as keys:
+    ``("hide", k)`` hides the k hottest pixels, ``("show", k)`` all but them.
+
+    The ladder comes first (:data:`DECISIVE_LADDER`), then the deletion curve (hide the
+    hottest x) and the insertion curve (show only the hottest x), x in steps of
+    1/:data:`CURVE_STEPS`. Keys repeat where two steps meet the same image;
+    :func:`image_job` scores each distinct key once, and ``cost.py`` counts them.
+
+    >>> ladder_keys(100, curves=False)[:3]
+    [('hide', 0), ('hide', 1), ('hide', 2)]
+    """
+    def count(share: float) -> int:
+        return int(round(share * n_pixels))
+
+    keys = [("hide", count(s)) for s in DECISIVE_LADDER]
+    if curves:
+        curve_x = np.linspace(0.0, 1.0, CURVE_STEPS + 1)
+        keys += [("hide", count(x)) for x in curve_x[1:]]
+        keys += [("show", count(x)) if count(x) > 0 else ("hide", n_pixels) for x in curve_x[:-1]]
+    return keys
+
+
 def image_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None = None,
               mask: np.ndarray | None = None, mask_source: str | None = None,
               chunk: int = 64, curves: bool = True, tolerance: float | None = None,
@@ -409,12 +432,8 @@ def image_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None =
         return m if kind == "hide" else ~m
 
     n_ladder = len(DECISIVE_LADDER)
-    keys = [("hide", count(s)) for s in DECISIVE_LADDER]
     curve_x = np.linspace(0.0, 1.0, CURVE_STEPS + 1)
-    if curves:
-        # deletion: hide the hottest x; insertion: show only the hottest x.
-        keys += [("hide", count(x)) for x in curve_x[1:]]
-        keys += [("show", count(x)) if count(x) > 0 else ("hide", n_pixels) for x in curve_x[:-1]]
+    keys = ladder_keys(n_pixels, curves=curves)
     scored = {("hide", 0): base}
     unique = [k for k in dict.fromkeys(keys) if k not in scored]
     erase_batch = []
