@@ -22,7 +22,8 @@ from .listing import class_names, list_images
 from .engine import PassEngine
 from .errors import AuditError, ClusterError, DataError, ImageSkip, ModelError, OutputError, UsageError
 from .findings import Finding, Thresholds
-from .compare import CompareResult, compare
+from .compare import compare
+from .comparison import CompareResult
 from .heatmap import HeatmapResult, run_heatmap
 from .model import Classifier, ModelConfig, OnnxClassifier, read_model_config
 from .occlusion import Fill, GridPlan, RandomPatchPlan, SmoothMaskPlan

@@ -25,7 +25,7 @@ from rich.progress import (BarColumn, MofNCompleteColumn, Progress, TextColumn,
                            TimeElapsedColumn, TimeRemainingColumn)
 from rich.table import Table
 
-from .compare import FAIL_ON as COMPARE_FAIL_ON
+from .comparison import FAIL_ON as COMPARE_FAIL_ON
 from .engine import SCORES
 from .errors import AuditError, UsageError
 from .findings import FAIL_ON, Thresholds, parse_threshold_overrides, read_thresholds

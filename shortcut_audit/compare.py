@@ -40,28 +40,11 @@ import os
 from pathlib import Path
 from typing import Callable
 
-from .comparison import (FAIL_ON, NEGLIGIBLE, SCHEMA, STATISTICS, VERDICTS,  # noqa: F401 (re-exported)
-                         ClassComparison, CompareResult, Difference, FindingComparison,
-                         _check_bootstrap, compare_audits)
+from .comparison import SCHEMA, CompareResult, _check_bootstrap, compare_audits
 from .errors import UsageError
-from .intervals import Interval, binomial_bootstrap, paired_bootstrap  # noqa: F401 (re-exported)
 from .store import read_audit, write_json
 
-__all__ = [
-    "Interval",
-    "Difference",
-    "ClassComparison",
-    "FindingComparison",
-    "CompareResult",
-    "compare",
-    "compare_audits",
-    "paired_bootstrap",
-    "binomial_bootstrap",
-    "STATISTICS",
-    "VERDICTS",
-    "FAIL_ON",
-    "NEGLIGIBLE",
-]
+__all__ = ["compare"]
 
 
 def _load_audit(folder: str | os.PathLike, option: str) -> tuple[Path, dict]:

@@ -143,7 +143,7 @@ def test_every_command_line_choice_is_one_the_library_takes():
     # library's own checks, and each --plan must build a plan of that kind (a kind
     # added to PLAN_KINDS without a branch in build_plan would come back as another).
     from shortcut_audit import cli
-    from shortcut_audit.compare import FAIL_ON as COMPARE_FAIL_ON
+    from shortcut_audit.comparison import FAIL_ON as COMPARE_FAIL_ON
     from shortcut_audit.findings import FAIL_ON
 
     for option, enum in (("layout", cli.Layout), ("channels", cli.Channels), ("resize", cli.Resize),

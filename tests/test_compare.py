@@ -16,8 +16,9 @@ import pytest
 from scipy import stats
 
 from scan_fixtures import clean_model, corner_model, make_dataset
-from shortcut_audit.compare import (CompareResult, compare, compare_audits, binomial_bootstrap,
-                                    paired_bootstrap)
+from shortcut_audit.compare import compare
+from shortcut_audit.comparison import CompareResult, compare_audits
+from shortcut_audit.intervals import binomial_bootstrap, paired_bootstrap
 from shortcut_audit.errors import UsageError
 from shortcut_audit.model import ModelConfig
 from shortcut_audit.report.compare_page import render_compare_page, write_compare_page

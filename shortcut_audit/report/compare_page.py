@@ -4,7 +4,7 @@ Three steps, kept apart so that rendering can be checked in a test:
 
 - :func:`compare_figures` reads the two audits' stored heatmaps (and the images, where
   the dataset root is still there) and draws the figures, as PNG bytes;
-- :func:`render_compare_page` turns a :class:`~shortcut_audit.compare.CompareResult`
+- :func:`render_compare_page` turns a :class:`~shortcut_audit.comparison.CompareResult`
   and those figures into one self-contained HTML page (pure; the shared environment of
   :mod:`.html`, autoescape on, ``templates/compare.html.j2`` extending ``base.html.j2``,
   every figure a ``data:`` URI, no timestamp);
