@@ -56,7 +56,7 @@ from shortcut_audit.maps import box_iou as _box_iou  # noqa: E402
 from shortcut_audit.model import ModelConfig, read_model_config  # noqa: E402
 from shortcut_audit.occlusion import GridPlan, plan_from_dict  # noqa: E402
 from shortcut_audit.scan import ScanSettings  # noqa: E402
-from shortcut_audit.sensitivity import DECISIVE_LADDER  # noqa: E402
+from shortcut_audit.sensitivity import CURVE_IMAGES, DECISIVE_LADDER  # noqa: E402
 
 BEGIN = "<!-- agreement:begin -->"
 END = "<!-- agreement:end -->"
@@ -118,7 +118,7 @@ def plan_label(plan) -> str:
     d = plan.to_dict()
     kind = d.pop("kind")
     if plan == REFERENCE:
-        return "grid (reference)"
+        return "grid"
     keep = {k: v for k, v in d.items() if v is not None and k not in ("seed",)}
     if kind == "adaptive":
         from shortcut_audit.occlusion import AdaptivePlan
@@ -137,6 +137,23 @@ def demo_sets() -> list[AuditSet]:
     for name, m in p.models.items():
         cfg = read_model_config(m.config) if m.config else None
         out.append(AuditSet(f"demo/{name}", m.onnx, p.images, p.masks, cfg, "trained, 144 images"))
+    return out
+
+
+def planted_sets(work: Path, only: list[str] | None = None) -> list[AuditSet]:
+    """The planted-shortcut suite's models on their regenerated audit sets (bench/planted)."""
+    sys.path.insert(0, str(HERE / "planted"))
+    import scenes
+    from suite import spec_of
+
+    truth = json.loads((HERE / "planted" / "truth.json").read_text(encoding="utf-8"))["models"]
+    out = []
+    for name, entry in truth.items():
+        if only and not any(o in f"planted/{name}" for o in only):
+            continue
+        written = scenes.write_set(spec_of(name), work / "planted" / name)
+        out.append(AuditSet(f"planted/{name}", HERE / "planted" / entry["onnx"], written["images"],
+                            written["masks"], None, "planted-shortcut suite, 20 images a class"))
     return out
 
 
@@ -215,11 +232,12 @@ def box_iou(a, b) -> float:
     return _box_iou(a, b)
 
 
-def run_audit(s: AuditSet, plan, out: Path, *, batch: int, threads: int = 1):
+def run_audit(s: AuditSet, plan, out: Path, *, batch: int, threads: int = 1, every_curve: bool = False):
     cfg = ModelConfig(batch_size=batch, threads=threads)
     if s.config is not None:
         cfg = cfg.merged_over(s.config)
-    settings = ScanSettings(plan=plan)
+    # the reference is the exhaustive audit: every patch, and the curves of every image
+    settings = ScanSettings(plan=plan, curve_images=None) if every_curve else ScanSettings(plan=plan)
     t0 = time.perf_counter()
     result = _scan_fn()(s.images, s.model, out=out, masks=s.masks, model_config=cfg, settings=settings)
     return result, time.perf_counter() - t0
@@ -274,7 +292,7 @@ def compare_plans(sets: list[AuditSet], plans: list, work: Path, *, batch: int =
     rows = []
     for s in sets:
         ref, t_ref = run_audit(s, REFERENCE, work / "runs" / s.name.replace("/", "_").replace(" ", "_") / "ref",
-                               batch=batch)
+                               batch=batch, every_curve=True)
         ref_pp = passes_per_image(ref)
         log(f"{s.name}: reference {ref_pp:.1f} passes/image, {t_ref:.1f} s; findings "
             f"{[f'{f.class_name} {f.kind} ({f.status})' for f in ref.findings]}")
@@ -344,7 +362,7 @@ def write_block(path: Path, block: str) -> None:
     path.write_text(f"{head}{BEGIN}\n{block}{END}{tail}", encoding="utf-8")
 
 
-DEFAULT_PLANS = ("adaptive:budget=45", "adaptive")
+DEFAULT_PLANS = ("grid", "adaptive:budget=64", "adaptive:budget=80")
 
 
 def main(argv=None) -> int:
@@ -356,6 +374,7 @@ def main(argv=None) -> int:
     ap.add_argument("--only", action="append", default=[], help="only the sets whose name contains this")
     ap.add_argument("--no-demo", action="store_true")
     ap.add_argument("--no-generated", action="store_true")
+    ap.add_argument("--no-planted", action="store_true", help="leave out the planted-shortcut suite")
     ap.add_argument("--json", type=Path)
     ap.add_argument("--no-write", action="store_true", help="do not write bench/RESULTS.md")
     args = ap.parse_args(argv)
@@ -368,6 +387,8 @@ def main(argv=None) -> int:
             sets += demo_sets()
         if not args.no_generated:
             sets += generated_sets(work, args.quick)
+        if not args.quick and not args.no_planted:
+            sets += planted_sets(work, args.only)
         for spec in args.set:
             name, _, rest = spec.partition("=")
             parts = rest.split(",")
@@ -379,8 +400,9 @@ def main(argv=None) -> int:
     load_after = os.getloadavg()
     head = (f"Run: `python bench/agreement.py` on {time.strftime('%Y-%m-%d %H:%M')}; load average before "
             f"{load_before[0]:.2f}, after {load_after[0]:.2f}; batch size 32, one onnxruntime thread, "
-            f"seed 0, mean fill, probability score. Reference: the exhaustive grid (8-pixel patches at "
-            f"stride 4 on 64 pixels). Bar: passes per image <= 1/3 of the grid's, identical findings "
+            f"seed 0, mean fill, probability score. Reference: the exhaustive audit (the grid of 8-pixel "
+            f"patches at stride 4 on 64 pixels, the curves of every image); every candidate, `grid` "
+            f"included, measures the curves of the default sample ({CURVE_IMAGES} images a class). Bar: passes per image <= 1/3 of the grid's, identical findings "
             f"(class, kind, status), region IoU >= 0.9, decisive area within one ladder step on >= 95% "
             f"of the images. Tolerances of the per-class metrics: "
             + ", ".join(f"{k} {v}" for k, v in TOLERANCES.items()) + ".\n\n")

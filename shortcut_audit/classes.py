@@ -155,6 +155,12 @@ def _rate(flags: list[bool]) -> float | None:
     return float(np.mean(flags)) if flags else None
 
 
+def _measured_mean(values: list) -> float | None:
+    """Mean over the images that have the value (curves are measured on a sample)."""
+    kept = [float(v) for v in values if v is not None and np.isfinite(v)]
+    return float(np.mean(kept)) if kept else None
+
+
 def summarise_classes(images: list[ImageSummary], labels: tuple[str, ...], *,
                       accumulator: ClassAccumulator | None = None,
                       shape: tuple[int, int] | None = None) -> list[ClassSummary]:
@@ -234,8 +240,8 @@ def summarise_classes(images: list[ImageSummary], labels: tuple[str, ...], *,
             "median_decisive_area": _median(areas),
             "mean_concentration": float(np.mean([im.concentration for im in members])),
             "mean_gini": float(np.mean([im.gini for im in members])),
-            "mean_deletion_area": float(np.nanmean([im.deletion_area for im in members])),
-            "mean_insertion_area": float(np.nanmean([im.insertion_area for im in members])),
+            "mean_deletion_area": _measured_mean([im.deletion_area for im in members]),
+            "mean_insertion_area": _measured_mean([im.insertion_area for im in members]),
             "median_background_share": _median([im.background_share for im in masked]),
             "object_erased_survival": survival,
             "erased_default_rate": default_rate,

@@ -32,6 +32,7 @@ from .findings import FAIL_ON, Thresholds, parse_threshold_overrides, read_thres
 from .options import (COLORS, LAYOUTS, OUTPUT_KINDS, RESIZES, ModelConfig, parse_numbers, parse_size, read_labels,
                       read_model_config, some_names)
 from .occlusion import FILL_KINDS, PLAN_KINDS, Fill, GridPlan, RandomPatchPlan, SmoothMaskPlan
+from .sensitivity import CURVE_IMAGES
 
 app = typer.Typer(
     name="shortcut-audit",
@@ -382,6 +383,10 @@ def audit(
     per_class: Optional[int] = typer.Option(None, "--per-class", min=1, help="At most this many images a class."),
     confirm: bool = typer.Option(True, "--confirm/--no-confirm", help="Run the counterfactual tests on suspects."),
     test_budget: int = typer.Option(40, "--test-budget", min=4, help="Images per counterfactual test."),
+    curve_images: Optional[int] = typer.Option(
+        CURVE_IMAGES, "--curve-images", min=1,
+        help="Images a class whose deletion and insertion curves are measured (32 passes each)."),
+    every_curve: bool = typer.Option(False, "--every-curve", help="Measure the curves of every image."),
     thresholds_file: Optional[Path] = typer.Option(None, "--thresholds", help="TOML file of threshold overrides.",
                                                    exists=True, dir_okay=False),
     threshold: list[str] = typer.Option([], "--threshold", help="Override one threshold: NAME=VALUE (repeatable)."),
@@ -415,7 +420,8 @@ def audit(
     settings = ScanSettings(
         plan=occ.plan, fill=occ.fill, seed=occ.seed, score=occ.score,
         thresholds=Thresholds.replace_from(Thresholds(), overrides), confirm=confirm,
-        test_budget=test_budget, per_class=per_class, tolerance=occ.tolerance)
+        test_budget=test_budget, per_class=per_class, tolerance=occ.tolerance,
+        curve_images=None if every_curve else curve_images)
     try:
         with _Bar("audit") as bar:
             result = run_audit(images, model, out=out_dir, masks=masks, manifest=manifest,

@@ -187,6 +187,7 @@ class _ShardJob:
     settings: Any                      # ScanSettings (imported lazily: scan imports us)
     label_index: tuple[tuple[str, int], ...]
     estimate_masks: bool
+    curve_paths: frozenset | None = None   # images whose curves are measured (None: all)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -246,7 +247,7 @@ def _analyse_shard(entries: Sequence[ImageEntry], job: _ShardJob) -> list[tuple[
                 f"{job.tool_version}; install the same version on every worker.")
         clf = _worker_classifier(job)
         return list(analyse_entries(entries, clf, job.settings, label_index=dict(job.label_index),
-                                    estimate_masks=job.estimate_masks))
+                                    estimate_masks=job.estimate_masks, curve_paths=job.curve_paths))
     except AuditError as exc:
         if isinstance(exc, ImageSkip):     # analyse_entries turns these into records; defensive
             raise
@@ -324,6 +325,7 @@ def iter_cluster_results(
     on_done: Callable[[int, int], None] | None = None,
     connect_timeout: float = 30.0,
     worker_timeout: float = 60.0,
+    curve_paths: frozenset[str] | None = None,
 ) -> Iterator[tuple[str, dict, dict]]:
     """Yield ``(path, record, arrays)`` for each entry, computed on a Dask cluster.
 
@@ -350,6 +352,8 @@ def iter_cluster_results(
         Class name to output index (from the model's labels).
     estimate_masks : bool
         As :func:`analyse_entries`.
+    curve_paths : frozenset of str, optional
+        As :func:`analyse_entries`: the images whose curves are measured.
     address : str or ClusterSpec
         ``local:N`` or a Dask scheduler address (see :func:`parse_cluster`).
     sha256 : str, optional
@@ -393,11 +397,11 @@ def iter_cluster_results(
     return _run(entries, model_path, model_config, settings, label_index=label_index,
                 estimate_masks=estimate_masks, spec=spec, sha256=sha256, shard_size=shard_size,
                 retries=retries, stats=stats, on_done=on_done, distributed=distributed,
-                connect_timeout=connect_timeout, worker_timeout=worker_timeout)
+                connect_timeout=connect_timeout, worker_timeout=worker_timeout, curve_paths=curve_paths)
 
 
 def _run(entries, model_path, model_config, settings, *, label_index, estimate_masks, spec, sha256,
-         shard_size, retries, stats, on_done, distributed, connect_timeout, worker_timeout):
+         shard_size, retries, stats, on_done, distributed, connect_timeout, worker_timeout, curve_paths=None):
     if not entries:
         return
     from ._version import __version__
@@ -411,7 +415,8 @@ def _run(entries, model_path, model_config, settings, *, label_index, estimate_m
     job = _ShardJob(model_path=str(path), model_config=model_config, sha256=sha256,
                     tool_version=__version__, settings=settings,
                     label_index=tuple(sorted(label_index.items())),
-                    estimate_masks=bool(estimate_masks))
+                    estimate_masks=bool(estimate_masks),
+                    curve_paths=None if curve_paths is None else frozenset(curve_paths))
     by_path = {e.path: e for e in entries}
     total = len(by_path)
     run_id = uuid.uuid4().hex[:10]

@@ -14,7 +14,7 @@ Pure: numbers in, a frozen dataclass out.
 >>> image_passes(GridPlan(patch=0.125, stride=0.0625), 64, 64, masks=False)
 269
 >>> e = estimate_cost({"a": 100, "b": 50}, GridPlan(patch=0.125, stride=0.0625), 64, 64,
-...                   rate=1000.0, masks=False, per_class=(10,))
+...                   rate=1000.0, masks=False, per_class=(10,), curve_images=None)
 >>> e.images, round(e.seconds, 1), e.per_class[10]["images"]
 (150, 46.8, 20)
 """
@@ -25,7 +25,7 @@ from dataclasses import dataclass, field
 from typing import Mapping, Sequence
 
 from .occlusion import AdaptivePlan, Plan, pass_count
-from .sensitivity import DECISIVE_BISECT, ladder_keys
+from .sensitivity import CURVE_IMAGES, DECISIVE_BISECT, ladder_keys
 
 __all__ = ["CostEstimate", "image_passes", "estimate_cost", "ENGINE_SHARE", "FIXED_SECONDS"]
 
@@ -39,7 +39,8 @@ FIXED_SECONDS = 2.0
 
 
 def _ladder_passes(height: int, width: int, *, curves: bool = True) -> int:
-    """The distinct images of the ladder and the curves (as image_job scores them)."""
+    """The distinct images of the ladder and the curves (as image_job scores them; without
+    curves the ladder stops at the first step that moves the decision: at most all)."""
     return len({k for k in ladder_keys(height * width, curves=curves) if k != ("hide", 0)})
 
 
@@ -48,8 +49,8 @@ def image_passes(plan: Plan, height: int, width: int, *, masks: bool = True,
     """Forward passes of one image's analysis, at most.
 
     The heatmap (the plan's passes and the unperturbed image; an adaptive plan's budget),
-    the ladder and the curves, ``bisect`` bisection passes (at most
-    ``DECISIVE_BISECT``, only when the decision moves) and two erasures with a mask.
+    the ladder and the curves, ``bisect`` bisection passes (at most ``DECISIVE_BISECT``,
+    only when the decision moves) and two erasures with a mask.
     """
     heat = plan.max_passes(height, width) if isinstance(plan, AdaptivePlan) else pass_count(plan, height, width) + 1
     return int(heat + _ladder_passes(height, width, curves=curves) + bisect + (2 if masks else 0))
@@ -64,7 +65,8 @@ class CostEstimate:
     images : int
         Images to analyse (already stored ones left out).
     passes_per_image : int
-        At most, from :func:`image_passes`.
+        At most, from :func:`image_passes`, averaged over the images with and without
+        curves.
     passes : int
     rate : float
         The session's measured passes per second.
@@ -112,7 +114,8 @@ def _seconds(passes: int, rate: float) -> float:
 
 
 def estimate_cost(class_counts: Mapping[str, int], plan: Plan, height: int, width: int, *, rate: float,
-                  masks: bool = True, per_class: Sequence[int] = ()) -> CostEstimate:
+                  masks: bool = True, per_class: Sequence[int] = (),
+                  curve_images: int | None = CURVE_IMAGES) -> CostEstimate:
     """The expected passes and time of auditing images with ``class_counts`` images a class.
 
     Parameters
@@ -129,13 +132,24 @@ def estimate_cost(class_counts: Mapping[str, int], plan: Plan, height: int, widt
         Whether images have (given or estimated) object masks: two passes more each.
     per_class : sequence of int
         Caps to state the cost of as well (``--per-class N``).
+    curve_images : int or None
+        Images a class whose curves are measured (None: every image), as
+        :attr:`ScanSettings.curve_images <shortcut_audit.scan.ScanSettings.curve_images>`.
     """
-    ppi = image_passes(plan, height, width, masks=masks)
-    n = int(sum(class_counts.values()))
+    plain = image_passes(plan, height, width, masks=masks, curves=False)
+    with_curves = image_passes(plan, height, width, masks=masks, curves=True)
+
+    def passes(counts) -> int:
+        curved = sum(counts) if curve_images is None else sum(min(c, curve_images) for c in counts)
+        return int(sum(counts) * plain + curved * (with_curves - plain))
+
+    counts = [int(c) for c in class_counts.values()]
+    n = int(sum(counts))
+    total = passes(counts)
     caps = {}
     for cap in per_class:
-        m = int(sum(min(c, cap) for c in class_counts.values()))
-        if m < n:
-            caps[int(cap)] = {"images": m, "seconds": _seconds(m * ppi, rate)}
-    return CostEstimate(images=n, passes_per_image=ppi, passes=n * ppi, rate=float(rate),
-                        seconds=_seconds(n * ppi, rate), per_class=caps)
+        capped = [min(c, cap) for c in counts]
+        if sum(capped) < n:
+            caps[int(cap)] = {"images": int(sum(capped)), "seconds": _seconds(passes(capped), rate)}
+    return CostEstimate(images=n, passes_per_image=int(round(total / n)) if n else plain, passes=total,
+                        rate=float(rate), seconds=_seconds(total, rate), per_class=caps)

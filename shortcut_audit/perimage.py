@@ -9,6 +9,7 @@ cluster.py do not import each other both ways. ``settings`` is a
 from __future__ import annotations
 
 import dataclasses
+import hashlib
 from typing import Sequence
 
 import numpy as np
@@ -19,7 +20,7 @@ from .errors import AuditError, ImageSkip
 from .maps import estimate_object_mask
 from .sensitivity import ImageStats, image_job
 
-__all__ = ["analyse_entries"]
+__all__ = ["analyse_entries", "curve_sample"]
 
 
 #: What an image's record keeps of its ImageStats: every measured field but the
@@ -47,9 +48,36 @@ def _crop(pixels: np.ndarray, box: list[float] | None) -> np.ndarray:
     return pixels[r0:r1, c0:c1].astype(np.float32)
 
 
+def curve_sample(entries: Sequence[ImageEntry], per_class: int | None) -> frozenset[str] | None:
+    """The paths of the images whose deletion and insertion curves are measured:
+    ``per_class`` images of each label (None: every image).
+
+    Within a label the images are taken in the order of a hash of their paths: a sample
+    that does not follow how the files happen to be named (a catalogue's first files are
+    often one shoot), and that depends on the listing alone, so a resumed audit or a
+    cluster's shards make the same one.
+
+    >>> from pathlib import Path
+    >>> es = [ImageEntry(path=p, file=Path(p), label=p[0], mask_file=None) for p in ("a1", "a2", "b1", "a3")]
+    >>> chosen = curve_sample(es, 2)
+    >>> len(chosen), "b1" in chosen, len(chosen & {"a1", "a2", "a3"})
+    (3, True, 2)
+    """
+    if per_class is None:
+        return None
+    by_label: dict = {}
+    for e in entries:
+        by_label.setdefault(e.label, []).append(e.path)
+    chosen: list[str] = []
+    for paths in by_label.values():
+        paths.sort(key=lambda p: hashlib.blake2b(p.encode("utf-8", "surrogateescape"), digest_size=8).digest())
+        chosen += paths[:per_class]
+    return frozenset(chosen)
+
+
 def analyse_entries(entries: Sequence[ImageEntry], classifier, settings, *,
                     label_index: dict[str, int], estimate_masks: bool = True,
-                    engine: PassEngine | None = None):
+                    engine: PassEngine | None = None, curve_paths: frozenset[str] | None = None):
     """Yield ``(path, record, arrays)`` for each entry, in the engine's finishing order.
 
     This is the per-image half of a scan, the same wherever it runs: decode, estimate a
@@ -57,6 +85,8 @@ def analyse_entries(entries: Sequence[ImageEntry], classifier, settings, *,
     (with ``"skipped"`` for an image that could not be analysed); ``arrays`` holds the
     heatmap, the decisive crop and the mask. ``AuditError`` other than a skip stops it.
     ``engine`` defaults to a new one over the classifier (pass one to read its counters).
+    ``curve_paths`` are the images whose curves are measured (:func:`curve_sample`;
+    None: every image).
     """
     shape = (classifier.height, classifier.width)
     batch = classifier.batch_size
@@ -76,8 +106,9 @@ def analyse_entries(entries: Sequence[ImageEntry], classifier, settings, *,
             if mask is None and estimate_masks:
                 mask = estimate_object_mask(rec.pixels)
                 source = "estimated" if mask is not None else None
+            curves = curve_paths is None or rec.path in curve_paths
             yield rec.path, _scan_job(rec, label_index[rec.label], mask, source, settings,
-                                      batch, classifier, prepared_by)
+                                      batch, classifier, prepared_by, curves)
 
     for path, result in engine.run(jobs()):
         if isinstance(result, ImageSkip):
@@ -96,10 +127,11 @@ def _skip_job(reason: str):
 
 
 def _scan_job(rec: ImageRecord, label: int, mask, source, settings, batch: int,
-              classifier, prepared_by=None):
+              classifier, prepared_by=None, curves: bool = True):
     stats: ImageStats = yield from image_job(
         rec.pixels, plan=settings.plan, fill=settings.fill, target=label, mask=mask,
-        mask_source=source, chunk=batch, tolerance=settings.tolerance, prepared_by=prepared_by)
+        mask_source=source, chunk=batch, tolerance=settings.tolerance, prepared_by=prepared_by,
+        curves=curves)
     if settings.score == "prob":
         probs = stats.base_scores
     elif hasattr(classifier, "probs_from_logits"):   # no extra pass for the probabilities

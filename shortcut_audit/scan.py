@@ -34,7 +34,8 @@ from .listing import class_names, list_images
 from .model import ModelConfig, OnnxClassifier
 from .options import some_names
 from .occlusion import Fill, GridPlan, Plan, RandomPatchPlan, SmoothMaskPlan
-from .perimage import analyse_entries
+from .sensitivity import CURVE_IMAGES
+from .perimage import analyse_entries, curve_sample
 from .store import ResultStore, remove_stale_temporaries, write_json
 
 __all__ = ["ScanSettings", "AuditResult", "audit", "analyse_entries", "DEFAULT_PLAN", "DEFAULT_FILL", "make_scorer"]
@@ -58,6 +59,7 @@ class ScanSettings:
     test_budget: int = 40
     per_class: int | None = None
     tolerance: float | None = None
+    curve_images: int | None = CURVE_IMAGES
 
     def __post_init__(self) -> None:
         if self.tolerance is not None and not isinstance(self.plan, (RandomPatchPlan, SmoothMaskPlan)):
@@ -71,6 +73,10 @@ class ScanSettings:
             raise UsageError(f"--test-budget must be a whole number of at least 4; got {self.test_budget!r}.")
         if self.per_class is not None and (not isinstance(self.per_class, int) or self.per_class < 1):
             raise UsageError(f"--per-class must be a whole number of at least 1; got {self.per_class!r}.")
+        if self.curve_images is not None and (isinstance(self.curve_images, bool)
+                                              or not isinstance(self.curve_images, int) or self.curve_images < 1):
+            raise UsageError(f"--curve-images must be a whole number of at least 1; got {self.curve_images!r}. "
+                             f"Leave it out for the default of {CURVE_IMAGES} images a class.")
         # One seed for everything random: the plan's and the noise fill's follow it.
         if isinstance(self.plan, (RandomPatchPlan, SmoothMaskPlan)) and self.plan.seed != self.seed:
             object.__setattr__(self, "plan", dataclasses.replace(self.plan, seed=self.seed))
@@ -81,7 +87,7 @@ class ScanSettings:
         return {"plan": self.plan.to_dict(), "fill": self.fill.to_dict(), "seed": self.seed,
                 "score": self.score, "thresholds": self.thresholds.to_dict(),
                 "confirm": self.confirm, "test_budget": self.test_budget,
-                "per_class": self.per_class, "tolerance": self.tolerance}
+                "per_class": self.per_class, "tolerance": self.tolerance, "curve_images": self.curve_images}
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -291,19 +297,21 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
         progress({"phase": "estimate", "done": done_count, "total": len(usable), "passes": 0,
                   "passes_per_second": 0.0,
                   "estimate": estimate_cost(counts, settings.plan, *shape, rate=classifier.measured_rate,
-                                            masks=bool(masks) or estimate_masks, per_class=(10, 50))})
+                                            masks=bool(masks) or estimate_masks, per_class=(10, 50),
+                                            curve_images=settings.curve_images)})
     engine = PassEngine.for_classifier(classifier, settings.score,
                                        on_batch=lambda n: report_progress("images", engine))
     report_progress("images", engine)
+    curve_paths = curve_sample(usable, settings.curve_images)
     if cluster is None:
         results = analyse_entries(todo, classifier, settings, estimate_masks=estimate_masks,
-                                  label_index=label_index, engine=engine)
+                                  label_index=label_index, engine=engine, curve_paths=curve_paths)
     else:
         from .cluster import iter_cluster_results
         results = iter_cluster_results(todo, classifier.path, classifier.config, settings,
                                        label_index=label_index, estimate_masks=estimate_masks,
                                        address=cluster, sha256=classifier.sha256,
-                                       stats=engine.stats)
+                                       stats=engine.stats, curve_paths=curve_paths)
     with contextlib.closing(results):   # an error below cancels the cluster's tasks at once
         for path, record, arrays in results:
             done_count += 1

@@ -10,6 +10,7 @@ planted-corner models of tests/scan_fixtures.py, so the audit has a known findin
 
 from __future__ import annotations
 
+import dataclasses
 import inspect
 import json
 import os
@@ -173,10 +174,13 @@ def test_missing_dask_is_a_usage_error_naming_the_extra(monkeypatch, tmp_path):
 def test_local_cluster_of_two_workers_gives_the_same_audit_json(tmp_path, cluster_scan):
     data = make_dataset(tmp_path / "data", n=8)
     m = corner_model(tmp_path / "m.onnx")
-    ref = run_audit(data, m, out=tmp_path / "local", model_config=CONFIG, settings=FAST)
-    got = cluster_scan(data, m, tmp_path / "cluster", "local:2")
+    # curves on 3 images a class: the cluster's shards must measure the same sample
+    settings = dataclasses.replace(FAST, curve_images=3)
+    ref = run_audit(data, m, out=tmp_path / "local", model_config=CONFIG, settings=settings)
+    got = cluster_scan(data, m, tmp_path / "cluster", "local:2", settings=settings)
     # the audit is not trivially empty: the planted corner is found (test_scan.py)
     assert [(f.class_name, f.kind) for f in got.findings] == [("alpha", "fixed-position")]
+    assert sum(1 for im in got.images if im.deletion_area is not None) == 3 * 3
     assert _audit_text(tmp_path / "cluster") == _audit_text(tmp_path / "local")
     _assert_same_store(tmp_path / "local", tmp_path / "cluster")
     # all 24 images went to the cluster, each came back once, and the passes were counted

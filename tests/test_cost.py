@@ -34,16 +34,18 @@ class Counting:
 @pytest.mark.parametrize("plan", [GridPlan(patch=0.125, stride=0.0625), GridPlan(patch=4, stride=4),
                                   RandomPatchPlan(count=50)])
 @pytest.mark.parametrize("with_mask", [False, True])
-def test_image_passes_counts_what_the_image_job_scores(plan, with_mask):
+@pytest.mark.parametrize("curves", [True, False])
+def test_image_passes_counts_what_the_image_job_scores(plan, with_mask, curves):
     rng = np.random.default_rng(0)
     img = rng.uniform(0, 255, (32, 32, 3)).astype(np.float32)
     mask = np.zeros((32, 32), bool)
     mask[8:24, 8:24] = True
     scorer = Counting()
     stats = run_job(scorer, image_job(img, plan=plan, fill=Fill(kind="mean"), target=0,
-                                      mask=mask if with_mask else None), batch_size=32)
+                                      mask=mask if with_mask else None, curves=curves), batch_size=32)
     assert stats.decisive_area is None              # so no bisection pass was made
-    assert image_passes(plan, 32, 32, masks=with_mask, bisect=0) == scorer.rows == stats.passes
+    # no decision moves: no bisection, and the ladder without curves climbs every step
+    assert image_passes(plan, 32, 32, masks=with_mask, bisect=0, curves=curves) == scorer.rows == stats.passes
 
 
 def test_adaptive_plan_is_counted_at_its_budget():
@@ -55,13 +57,27 @@ def test_adaptive_plan_is_counted_at_its_budget():
 def test_estimate_arithmetic_and_per_class_caps():
     plan = GridPlan(patch=4, stride=4)               # 16 patches on 16 x 16
     ppi = image_passes(plan, 16, 16, masks=True)
-    e = estimate_cost({"a": 30, "b": 5, "c": 12}, plan, 16, 16, rate=500.0, masks=True, per_class=(10, 40))
+    e = estimate_cost({"a": 30, "b": 5, "c": 12}, plan, 16, 16, rate=500.0, masks=True, per_class=(10, 40),
+                      curve_images=None)
     assert e.images == 47 and e.passes == 47 * ppi
     assert e.seconds == pytest.approx(47 * ppi / (500.0 * ENGINE_SHARE) + FIXED_SECONDS)
     # a cap of 10 keeps 10 + 5 + 10 images; a cap above every class changes nothing and is left out
     assert e.per_class == {10: {"images": 25, "seconds": pytest.approx(25 * ppi / (500.0 * ENGINE_SHARE)
                                                                          + FIXED_SECONDS)}}
     assert "--per-class 10: 25 images" in e.describe()
+
+
+def test_estimate_counts_curves_on_the_sampled_images_only():
+    plan = GridPlan(patch=4, stride=4)
+    plain = image_passes(plan, 16, 16, masks=False, curves=False)
+    full = image_passes(plan, 16, 16, masks=False, curves=True)
+    # two 16-step curves, of which the ladder's 25% and "all hidden" are shared
+    assert full - plain == 2 * 16 - 2
+    e = estimate_cost({"a": 30, "b": 5}, plan, 16, 16, rate=100.0, masks=False, per_class=(10,), curve_images=8)
+    # curves on 8 of a's images and all 5 of b's
+    assert e.passes == 35 * plain + 13 * (full - plain)
+    assert e.per_class[10]["seconds"] == pytest.approx((15 * plain + 13 * (full - plain)) / (100.0 * ENGINE_SHARE)
+                                                       + FIXED_SECONDS)
 
 
 def test_measured_rate_reuses_the_batch_size_measurement(tmp_path, monkeypatch):

@@ -127,6 +127,48 @@ def test_rerun_reuses_results_and_changed_settings_invalidate(tmp_path):
     assert other.run["resumed_images"] == 0
 
 
+def test_curves_are_measured_on_the_sample_and_the_rest_of_the_audit_is_unchanged(tmp_path):
+    data = make_dataset(tmp_path / "data", n=6)
+    m = corner_model(tmp_path / "m.onnx")
+    every = run_audit(data, m, out=tmp_path / "every", settings=ScanSettings(confirm=False, curve_images=None))
+    some = run_audit(data, m, out=tmp_path / "some", settings=ScanSettings(confirm=False, curve_images=2))
+    def measured(im):          # no curves: None in the record (NaN is not JSON)
+        return im.deletion_area is not None and np.isfinite(im.deletion_area)
+
+    with_curves = [im for im in some.images if measured(im)]
+    per_class = {}
+    for im in with_curves:
+        per_class[im.label] = per_class.get(im.label, 0) + 1
+    assert sorted(per_class.values()) == [2, 2, 2]
+    # the sampled images' curves are the same numbers; the class means are their means
+    full = {im.path: im for im in every.images}
+    for im in with_curves:
+        assert im.deletion_area == pytest.approx(full[im.path].deletion_area, abs=1e-6)
+    for c in some.classes:
+        mine = [im.deletion_area for im in with_curves if im.label == some.model["labels"].index(c.name)]
+        assert c.metrics["mean_deletion_area"] == pytest.approx(np.mean(mine))
+    # everything a rule reads is unchanged, at fewer passes
+    assert [im.decisive_area for im in some.images] == [im.decisive_area for im in every.images]
+    assert [(f.class_name, f.kind) for f in some.findings] == [(f.class_name, f.kind) for f in every.findings]
+    assert some.run["passes_this_run"] < every.run["passes_this_run"]
+    # and the same sample again on a fresh run
+    again = run_audit(data, m, out=tmp_path / "again", settings=ScanSettings(confirm=False, curve_images=2))
+    assert {im.path for im in again.images if measured(im)} == {im.path for im in with_curves}
+
+
+def test_every_curve_on_the_command_line(tmp_path):
+    from typer.testing import CliRunner
+    from shortcut_audit.cli import app
+    data = make_dataset(tmp_path / "data", n=4)
+    m = corner_model(tmp_path / "m.onnx")
+    for args, want in (([], 32), (["--curve-images", "2"], 2), (["--every-curve"], None)):
+        out = tmp_path / f"out{len(args)}{want}"
+        r = CliRunner().invoke(app, ["audit", str(data), "-m", str(m), "-o", str(out), "--no-confirm",
+                                     "--no-report", "--fail-on", "never", *args])
+        assert r.exit_code == 0, r.output
+        assert json.loads((out / "audit.json").read_text())["settings"]["curve_images"] == want
+
+
 KILL_SCRIPT = """
 import sys
 sys.path.insert(0, {tests!r})

@@ -214,3 +214,34 @@ def test_mask_tests_background_model():
     assert stats.survives_object_erased is True
     assert stats.survives_background_erased is False
     assert stats.background_share > 0.9
+
+
+def test_ladder_without_curves_finds_the_same_decisive_area_for_fewer_passes():
+    # A linear two-class score whose margin varies from image to image, so the decision
+    # moves at different ladder steps (or not within 25%): climbing the ladder step by
+    # step must stop at the step that scoring the whole ladder at once finds first.
+    rng = np.random.default_rng(3)
+    h = w = 16
+    W = np.zeros((2, h * w * 3))
+    W[0] = rng.normal(0.0, 1.0, h * w * 3)
+    plan, fill = GridPlan(patch=4, stride=2), Fill(kind="constant", value=0.0)
+    steps = set()
+    for k in range(12):
+        x = rng.uniform(0, 255, (h, w, 3)).astype(np.float32)
+        s0 = float(W[0] @ x.ravel())
+        # class 1 a constant a little below class 0's score: the margin decides the step
+        b = np.array([0.0, s0 - abs(s0) * (0.05 + 0.1 * k) - 1.0])
+        mask = np.zeros((h, w), bool)
+        mask[4:12, 4:12] = True
+        full = run_job(linear_scorer(W, b), image_job(x, plan=plan, fill=fill, target=0, mask=mask,
+                                                      curves=True), batch_size=64)
+        lean = run_job(linear_scorer(W, b), image_job(x, plan=plan, fill=fill, target=0, mask=mask,
+                                                      curves=False), batch_size=64)
+        assert lean.decisive_area == full.decisive_area
+        assert lean.decisive_box == full.decisive_box
+        assert lean.survives_object_erased == full.survives_object_erased
+        assert lean.survives_background_erased == full.survives_background_erased
+        assert lean.deletion == [] and np.isnan(lean.deletion_area)
+        assert lean.passes < full.passes
+        steps.add(full.decisive_area)
+    assert len(steps) >= 3                    # the images exercised several steps

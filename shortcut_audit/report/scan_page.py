@@ -606,6 +606,8 @@ def render_report(audit: dict, figures: dict[str, bytes], *, timestamp: str | No
         "classes": class_views,
         "class_means": _uri(figures, "class-means"),
         "curves": _uri(figures, "curves"),
+        "curve_sample": (f"measured on {settings['curve_images']} images a class, chosen by a hash of their paths"
+                         if isinstance(settings.get("curve_images"), int) else "measured on every image"),
         "settings_rows": [(_label(k), _value(k, settings[k])) for k in sorted(settings) if k != "thresholds"],
         "threshold_rows": [(k, _value("", th[k]), reasons_known.get(k, ""))
                            for k in [n for n in reasons_known if n in th] + sorted(set(th) - set(reasons_known))],
