@@ -3,6 +3,7 @@
     python bench/truth.py                      # every model of bench/planted/truth.json
     python bench/truth.py --model tag-kite     # one model (repeatable)
     python bench/truth.py --json score.json    # also write the numbers
+    python bench/truth.py --suite variants     # the held-out variants (bench/planted/variants/)
 
 For each model its audit images and masks are regenerated from the deterministic scene
 generator (bench/planted/scenes.py) into a temporary folder (their digest is checked
@@ -39,7 +40,7 @@ sys.path.insert(0, str(PLANTED))
 sys.path.insert(0, str(HERE.parent))
 
 import scenes  # noqa: E402
-from suite import spec_of  # noqa: E402
+from suite import SUITES, spec_of  # noqa: E402
 
 import shortcut_audit  # noqa: E402
 from shortcut_audit.maps import box_iou  # noqa: E402
@@ -98,14 +99,21 @@ def score_findings(entry: dict, findings: list[dict], classes: list[dict], min_c
 
 
 def on_object_share(finding: dict, masks_root: Path) -> float | None:
-    """Mean share of a finding's tested boxes (``evidence.test.examples``) that lies on the
-    source image's object mask: near 1 means the region is a part of the object itself."""
+    """Mean share of a finding's tested boxes (``evidence.test.examples``; a motif's member
+    crops) that lies on the source image's object mask: near 1 means the region is a part
+    of the object itself."""
     import numpy as np
     from PIL import Image
 
     shares = []
-    for ex in ((finding.get("evidence") or {}).get("test") or {}).get("examples", []):
-        box, src = ex.get("box"), ex.get("source_path")
+    evidence = finding.get("evidence") or {}
+    if finding.get("kind") == "recurring-motif" and evidence.get("member_boxes"):
+        # a motif's tested crops are its members' boxes in their own images (an example's
+        # ``box`` is where the crop was pasted in the target)
+        pairs = list(zip(evidence["member_boxes"], evidence.get("member_paths", [])))
+    else:
+        pairs = [(ex.get("box"), ex.get("source_path")) for ex in (evidence.get("test") or {}).get("examples", [])]
+    for box, src in pairs:
         path = masks_root / src if src else None
         if box is None or path is None or not path.exists():
             continue
@@ -117,7 +125,7 @@ def on_object_share(finding: dict, masks_root: Path) -> float | None:
     return round(float(np.mean(shares)), 3) if shares else None
 
 
-def score_model(name: str, entry: dict, workdir: Path) -> dict:
+def score_model(name: str, entry: dict, workdir: Path, folder: Path = PLANTED) -> dict:
     """Regenerate the audit set of ``name`` under ``workdir``, audit it, score it."""
     spec = spec_of(name)
     written = scenes.write_set(spec, workdir / "set")
@@ -125,7 +133,7 @@ def score_model(name: str, entry: dict, workdir: Path) -> dict:
         print(f"warning: {name}: regenerated audit set differs from truth.json "
               f"({written['sha256'][:12]} vs {entry['audit_set']['sha256'][:12]})", file=sys.stderr)
     t0 = time.perf_counter()
-    result = _run_audit(written["images"], PLANTED / entry["onnx"], written["masks"], workdir / "out")
+    result = _run_audit(written["images"], folder / entry["onnx"], written["masks"], workdir / "out")
     seconds = time.perf_counter() - t0
     findings = [f.to_dict() for f in result.findings]
     classes = [{"name": c.name, "correct": c.correct, "images": c.images} for c in result.classes]
@@ -214,8 +222,11 @@ def main(argv=None) -> int:
     ap.add_argument("--model", action="append", help="score only this model (repeatable)")
     ap.add_argument("--json", type=Path, help="write the per-model rows and totals here")
     ap.add_argument("--keep", type=Path, help="keep the regenerated sets and audits in this folder")
+    ap.add_argument("--suite", choices=sorted(SUITES), default="planted",
+                    help="the suite to score (variants: the held-out models, bench/planted/variants/)")
     args = ap.parse_args(argv)
-    truth = load_truth()["models"]
+    folder = PLANTED / SUITES[args.suite][1]
+    truth = load_truth(folder / "truth.json")["models"]
     names = args.model or list(truth)
     unknown = [n for n in names if n not in truth]
     if unknown:
@@ -227,7 +238,7 @@ def main(argv=None) -> int:
     with tempfile.TemporaryDirectory() as tmp:
         base = args.keep or Path(tmp)
         for name in names:
-            row = score_model(name, truth[name], base / name)
+            row = score_model(name, truth[name], base / name, folder)
             rows.append(row)
             print(f"{name}: {row['findings']} findings, {row['seconds']:.0f} s", flush=True)
     tot = totals(rows)

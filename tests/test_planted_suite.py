@@ -23,9 +23,12 @@ sys.path.insert(0, str(ROOT / "bench"))
 import effects  # noqa: E402
 import scenes  # noqa: E402
 import truth as board  # noqa: E402
-from suite import MODELS, spec_of  # noqa: E402
+from suite import MODELS, VARIANTS, spec_of  # noqa: E402
 
 TRUTH = json.loads((PLANTED / "truth.json").read_text(encoding="utf-8"))["models"]
+#: The held-out variants (bench/planted/variants): their files are checked like the
+#: suite's; no floor is asserted on their scoreboard, so no rule is tuned to them.
+VARIANTS_TRUTH = json.loads((PLANTED / "variants" / "truth.json").read_text(encoding="utf-8"))["models"]
 
 #: Largest difference allowed between a recorded rate and the same rate measured again:
 #: the scenes and the ONNX files are byte-identical, so only onnxruntime's float order
@@ -46,12 +49,21 @@ def test_every_model_of_the_suite_is_in_truth_with_its_kinds_covered():
     assert len({e["architecture"] for e in TRUTH.values() if not e["planted"]}) >= 3
 
 
-@pytest.mark.parametrize("name", list(TRUTH))
-def test_regenerated_audit_set_matches_the_recorded_digest(name):
+def test_every_variant_is_in_its_truth_and_none_shares_a_name_or_seed_with_the_suite():
+    assert [m["name"] for m in VARIANTS] == list(VARIANTS_TRUTH)
+    assert not {m["name"] for m in VARIANTS} & {m["name"] for m in MODELS}
+    assert not {m["seed"] for m in VARIANTS} & {m["seed"] for m in MODELS}
+
+
+ALL = [(n, TRUTH[n], PLANTED) for n in TRUTH] + [(n, VARIANTS_TRUTH[n], PLANTED / "variants") for n in VARIANTS_TRUTH]
+
+
+@pytest.mark.parametrize("name,entry,folder", ALL, ids=[a[0] for a in ALL])
+def test_regenerated_audit_set_matches_the_recorded_digest(name, entry, folder):
     spec = spec_of(name)
     items = [(rel, rgb, mask) for rel, rgb, mask, *_ in scenes.audit_items(spec)]
-    assert len(items) == TRUTH[name]["audit_set"]["count"] == len(spec["labels"]) * spec["audit_per_class"]
-    assert scenes.set_digest(items) == TRUTH[name]["audit_set"]["sha256"]
+    assert len(items) == entry["audit_set"]["count"] == len(spec["labels"]) * spec["audit_per_class"]
+    assert scenes.set_digest(items) == entry["audit_set"]["sha256"]
 
 
 def test_a_shortcut_changes_only_its_own_pixels():
@@ -78,11 +90,10 @@ def test_written_pngs_hold_the_rendered_pixels(tmp_path):
     assert np.array_equal(np.asarray(Image.open(out["masks"] / rel)) > 127, mask)
 
 
-@pytest.mark.parametrize("name", list(TRUTH))
-def test_shipped_onnx_matches_truth(name):
+@pytest.mark.parametrize("name,entry,folder", ALL, ids=[a[0] for a in ALL])
+def test_shipped_onnx_matches_truth(name, entry, folder):
     import onnx
-    entry = TRUTH[name]
-    data = (PLANTED / entry["onnx"]).read_bytes()
+    data = (folder / entry["onnx"]).read_bytes()
     assert hashlib.sha256(data).hexdigest() == entry["sha256"]
     proto = onnx.load_model_from_string(data)
     meta = json.loads({p.key: p.value for p in proto.metadata_props}["shortcut_audit"])
@@ -92,7 +103,7 @@ def test_shipped_onnx_matches_truth(name):
 
 
 def test_all_onnx_files_together_stay_small():
-    total = sum((PLANTED / e["onnx"]).stat().st_size for e in TRUTH.values())
+    total = sum((folder / e["onnx"]).stat().st_size for _, e, folder in ALL)
     assert total <= 6 * 1024 * 1024
 
 
@@ -206,3 +217,8 @@ def test_on_object_share_of_tested_boxes(tmp_path):
         {"box": None, "source_path": "a/a_00.png"}]}}}                 # no box: left out
     assert board.on_object_share(finding, tmp_path) == pytest.approx(0.75)
     assert board.on_object_share({"evidence": {}}, tmp_path) is None
+    # a motif is measured on its members' crops in their own images, not where they were pasted
+    motif = {"kind": "recurring-motif", "evidence": {
+        "member_boxes": [[0.5, 0.0, 1.0, 1.0], [0.25, 0.0, 0.75, 1.0]], "member_paths": ["a/a_00.png"] * 2,
+        "test": {"examples": [{"box": [0.0, 0.0, 0.5, 1.0], "source_path": "a/a_00.png"}]}}}
+    assert board.on_object_share(motif, tmp_path) == pytest.approx((0.0 + 0.5) / 2)

@@ -2,6 +2,7 @@
 
     python bench/planted/build.py                 # every model, writes models/ and truth.json
     python bench/planted/build.py --only tag-kite # one model (its truth entry is replaced)
+    python bench/planted/build.py --suite variants  # the held-out variants, in variants/
 
 Seeded and single-threaded (``torch.manual_seed``, ``torch.use_deterministic_algorithms``,
 one thread), so a rebuild on the same torch gives byte-identical ONNX files. Each model
@@ -29,7 +30,7 @@ sys.path.insert(0, str(HERE.parents[1]))
 
 import effects  # noqa: E402
 import scenes  # noqa: E402
-from suite import ACCEPTED, MODELS, spec_of  # noqa: E402
+from suite import ACCEPTED, SUITES, spec_of  # noqa: E402
 
 SCALE = 1.0 / 255.0
 STRONG = 0.5
@@ -198,8 +199,13 @@ def truth_entry(spec, path: Path, measured: dict, audit: dict) -> dict:
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--only", action="append", help="build only this model (repeatable)")
-    ap.add_argument("--out", type=Path, default=HERE, help="folder of models/ and truth.json")
+    ap.add_argument("--suite", choices=sorted(SUITES), default="planted",
+                    help="the suite (variants: the held-out models, in variants/)")
+    ap.add_argument("--out", type=Path, default=None, help="folder of models/ and truth.json")
     args = ap.parse_args(argv)
+    models, folder = SUITES[args.suite]
+    if args.out is None:
+        args.out = HERE / folder
     import tempfile
 
     import torch
@@ -208,7 +214,7 @@ def main(argv=None) -> int:
     truth_path = args.out / "truth.json"
     truth = json.loads(truth_path.read_text()) if truth_path.exists() else {"models": {}}
     truth.setdefault("models", {})
-    for spec in [spec_of(n) for n in args.only] if args.only else MODELS:
+    for spec in [spec_of(n) for n in args.only] if args.only else models:
         t0 = time.perf_counter()
         x, y = training_set(spec)
         t1 = time.perf_counter()
@@ -226,7 +232,7 @@ def main(argv=None) -> int:
         sink = f", sink absorbed {entry['sink']['absorbed']:.2f}" if entry["sink"] else ""
         print(f"{spec['name']}: accuracy {entry['accuracy']:.2f}; {pulls or 'clean'}{sink}; "
               f"render {t1 - t0:.0f} s, train {t2 - t1:.0f} s, {entry['bytes'] / 1024:.0f} KiB", flush=True)
-        order = {m["name"]: i for i, m in enumerate(MODELS)}
+        order = {m["name"]: i for i, m in enumerate(models)}
         truth["models"] = dict(sorted(truth["models"].items(), key=lambda kv: order.get(kv[0], 99)))
         truth["about"] = ("Planted-shortcut suite: per model its facts, what is planted on which class, "
                           "and the effects measured with onnxruntime on the effect scenes (split 2).")
