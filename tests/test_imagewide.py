@@ -219,3 +219,22 @@ def test_doctests():
     import shortcut_audit.imagewide as module
     result = doctest.testmod(module)
     assert result.attempted > 0 and result.failed == 0
+
+
+def test_the_report_and_the_pack_word_an_image_wide_finding():
+    from shortcut_audit.pack import request_text
+    from shortcut_audit.report.words import KIND_TITLES, finding_sentence, test_sentence
+
+    f = _image_wide(_background("confirmed"), _result(37, 20), None, [], Thresholds())
+    d = dict(f.to_dict(), id="F1")
+    d["evidence"]["median_background_share"] = 0.9
+    assert KIND_TITLES["image-wide"] == "read from the whole picture"
+    assert "spread over the whole picture" in finding_sentence(d) and "90%" in finding_sentence(d)
+    told = test_sentence(d)
+    # the residual test's counts, then the background swap's (39 of 40 against 0)
+    assert "turned 37 of them (92%) into block" in told and "20 of 40 (50%)" in told
+    assert "Their backgrounds alone turned 39 of 40 (98%) into block" in told
+    audit = {"classes": [{"name": "block", "images": 20}, {"name": "kite", "images": 20}],
+             "model": {"labels": ["block", "kite"]}}
+    text = request_text(d, audit, n_images=3, folder="F1-image-wide-block")
+    assert "processed **differently**" in text and "processed the **same** way" in text
