@@ -71,7 +71,8 @@ VERDICTS: dict[str, str] = {
 }
 
 _KIND_STATISTIC = {"localized": "small_area_rate", "fixed-position": "box_agreement",
-                   "background": "median_background_share", "recurring-motif": "motif_coverage"}
+                   "background": "median_background_share", "recurring-motif": "motif_coverage",
+                   "image-wide": "median_background_share"}
 
 
 # --------------------------------------------------------------------------- results

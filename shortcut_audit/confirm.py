@@ -13,7 +13,8 @@ so no pixels are kept from the first half:
 2. **Tests.** Each finding gets the test that fits its kind: a transplant at the same
    place (fixed-position), a transplant of the medoid crop onto other objects
    (recurring-motif), a transplant of each image's own decisive region (localized),
-   a background swap (background); plus the removal test for regions. The status
+   a background swap (background), and beside it a residual transplant that tells an
+   image-wide cast from a backdrop (imagewide.py); plus the removal test for regions. The status
    becomes ``confirmed`` or ``not-confirmed`` by the thresholds ``confirm_alpha`` and
    ``confirm_effect``; counts, rates, the p-value and the images used go into the
    finding's evidence.
@@ -29,7 +30,9 @@ import numpy as np
 from .classes import ClassSummary, ImageSummary
 from .dataset import ImageEntry, ImageRecord, iter_records
 from .engine import PassEngine
+from .errors import UsageError
 from .findings import MIN_MOTIF_IMAGES, Finding, Thresholds, motif_candidates
+from .imagewide import residual_transplant_job
 from .motifs import cut_crop, find_motifs
 from .probes import background_swap_job, removal_job, transplant_job
 from .regions import tighten_region
@@ -119,7 +122,7 @@ def add_motif_findings(findings: list[Finding], classes: list[ClassSummary],
     out = _small_things_in_backgrounds(out, classes, images, entries, classifier, th=th, side=side,
                                        max_examples=max_examples)
     out.sort(key=lambda f: (f.class_index, ("fixed-position", "localized", "recurring-motif",
-                                            "background").index(f.kind)))
+                                            "background", "image-wide").index(f.kind)))
     return out
 
 
@@ -178,6 +181,30 @@ def _with_motif_candidates(findings: list[Finding]) -> tuple[list[Finding], set[
     return out, added
 
 
+def _image_wide(f: Finding, result, skipped: str | None, target_paths: list[str],
+                th: Thresholds) -> Finding:
+    """A confirmed background finding becomes ``image-wide`` when the residual transplant
+    confirms too: the object's own fine texture carries the class as well as the
+    backdrop does, so the evidence is over the whole picture. Otherwise it stays a
+    background finding, the residual test kept in its evidence (``image_wide_test``)."""
+    if result is None or isinstance(result, Exception):
+        reason = (f"test failed: {result}" if isinstance(result, Exception)
+                  else skipped or "not enough images (or masks) to run its test")
+        return dataclasses.replace(f, evidence=dict(f.evidence, image_wide_test={"ran": False, "reason": reason}))
+    d = result.to_dict()
+    d["ran"] = True
+    for ex in d.get("examples", []):
+        if isinstance(ex.get("target"), int) and ex["target"] < len(target_paths):
+            ex["target_path"] = target_paths[ex["target"]]
+    wide = result.status(alpha=th.confirm_alpha, min_effect=th.confirm_effect)
+    if f.status != "confirmed" or wide != "confirmed":
+        return dataclasses.replace(f, evidence=dict(f.evidence, image_wide_test=d))
+    ev = {k: v for k, v in f.evidence.items() if k not in ("test", "p_value")}
+    ev.update(test=d, p_value=result.p_value, background_test=f.evidence["test"],
+              background_p_value=f.evidence.get("p_value"))
+    return dataclasses.replace(f, kind="image-wide", evidence=ev)
+
+
 def confirm_findings(findings: list[Finding], images: list[ImageSummary],
                      entries: dict[str, ImageEntry], classifier, *, thresholds: Thresholds,
                      fill, budget: int, seed: int,
@@ -226,6 +253,7 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
         return masks[rec.path]
 
     jobs = []
+    results_skipped: dict[int, str] = {}        # per test: why its image-wide test did not run
     test_sources: dict[int, list[str]] = {}     # per test: the image path of each source index
     test_targets: dict[int, list[str]] = {}     # and of each target index
     for k, (f, own_s, others_s) in enumerate(plans):
@@ -249,6 +277,13 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
                 jobs.append(((k, "test"), background_swap_job(
                     own=own_m, others=oth_m, suspect=f.class_index, trials=budget, seed=job_seed,
                     own_scores=known(test_sources[k]), others_scores=known(test_targets[k]))))
+                try:
+                    jobs.append(((k, "image-wide"), residual_transplant_job(
+                        own=own_m, others=oth_m, suspect=f.class_index,
+                        flat_share=thresholds.flat_tile_share, trials=budget, seed=job_seed + 1,
+                        others_scores=known(test_targets[k]))))
+                except UsageError as exc:
+                    results_skipped[k] = str(exc)
             continue
         control_masks = None
         if f.kind == "fixed-position" and f.region is not None:
@@ -323,8 +358,11 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
             if isinstance(ex.get("target"), int) and ex["target"] < len(tgt_paths):
                 ex["target_path"] = tgt_paths[ex["target"]]
         d["images"] = {"own": [im.path for im in own_s], "others": [im.path for im in others_s]}
-        out.append(dataclasses.replace(f, status=status, evidence=dict(
-            f.evidence, test=d, p_value=test.p_value)))
+        f = dataclasses.replace(f, status=status, evidence=dict(f.evidence, test=d, p_value=test.p_value))
+        if f.kind == "background":
+            f = _image_wide(f, results.get((k, "image-wide")), results_skipped.get(k),
+                            tgt_paths, thresholds)
+        out.append(f)
     # A background finding and its motif candidate: the motif stands in for it only when
     # its own transplant confirms (a small recurring thing, not the backdrop).
     kept = []

@@ -41,7 +41,7 @@ __all__ = [
 #: A motif is a cluster of at least this many near-alike crops (fewer is a coincidence).
 MIN_MOTIF_IMAGES = 3
 
-FINDING_KINDS = ("localized", "fixed-position", "recurring-motif", "background")
+FINDING_KINDS = ("localized", "fixed-position", "recurring-motif", "background", "image-wide")
 #: The gates of ``audit --fail-on``: a finding at least suspect, at least confirmed, or none.
 FAIL_ON = ("suspect", "confirmed", "never")
 
@@ -71,6 +71,8 @@ THRESHOLD_TABLE: tuple[tuple[str, float, str], ...] = (
      "share of a class's images whose decisive crops fall in one cluster of near-alike crops"),
     ("motif_margin", 0.15,
      "how far a class's small-area rate must exceed the other classes' before its crops are clustered"),
+    ("flat_tile_share", 0.25,
+     "share of an object's places, the flattest, whose noise residual the image-wide test spreads over other images (flat places hold a grain, not the object's edges)"),
     ("confirm_alpha", 0.01,
      "a counterfactual test confirms only below this one-sided p-value"),
     ("confirm_effect", 0.20,
@@ -101,6 +103,7 @@ class Thresholds:
     background_reliance_margin: float = 0.25
     motif_coverage: float = 0.30
     motif_margin: float = 0.15
+    flat_tile_share: float = 0.25
     confirm_alpha: float = 0.01
     confirm_effect: float = 0.20
 
@@ -202,7 +205,8 @@ def _finding(cls: ClassSummary, kind: str, region: list[float] | None, members: 
 
 def judge(classes: list[ClassSummary], images: list[ImageSummary], *,
           thresholds: Thresholds | None = None, max_examples: int = 8) -> list[Finding]:
-    """The suspect findings for each class (``recurring-motif`` is added by the scan).
+    """The suspect findings for each class (``recurring-motif`` is added by the scan, and a
+    ``background`` finding becomes ``image-wide`` only by its tests, in confirm.py).
 
     Per class, in this order: ``fixed-position`` (a class whose decisions hinge on small
     regions that agree in place; it stands for ``localized`` too), else ``localized``;

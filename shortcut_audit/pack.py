@@ -207,6 +207,12 @@ def request_text(finding: dict, audit: dict, *, n_images: int, folder: str) -> s
                 f"in the flagged photos (see contact_sheet.png).",
                 f"At least **{each}** photos each of other items ({other_list}) on the **same** "
                 f"surface and backdrop as the flagged {items}." if others else None]
+    elif kind == "image-wide":
+        thing = "the look shared by the flagged photos (their grain, noise or processing)"
+        asks = [f"At least **{total}** photos of {items} taken or processed **differently** from "
+                f"the flagged photos (another camera, setting or export), on varied backdrops.",
+                f"At least **{each}** photos each of other items ({other_list}) taken and "
+                f"processed the **same** way as the flagged {items}." if others else None]
     else:
         thing = "the pattern shown in contact_sheet.png"
         asks = [f"At least **{total}** photos of {items} without {thing}."]
@@ -317,7 +323,7 @@ def _finding_members(finding: dict, audit: dict, files: AuditFiles, folder: str)
             source = ""
         arrays = files.arrays(path)
         heat = arrays.get("heatmap")
-        mask = arrays.get("mask") if finding.get("kind") == "background" else None
+        mask = arrays.get("mask") if finding.get("kind") in ("background", "image-wide") else None
         pixels = files.pixels(path)
         if pixels is not None and heat is not None and pixels.shape[:2] == heat.shape:
             overlay_rel = f"overlays/{_file_name(path, '.png')}"

@@ -56,7 +56,7 @@ __all__ = [
     "background_swap_job",
 ]
 
-PROBE_TESTS = ("transplant", "background-swap", "removal")
+PROBE_TESTS = ("transplant", "background-swap", "removal", "residual-transplant")
 PLACEMENTS = ("same", "on-object")
 #: Trials kept in a result for the report.
 N_EXAMPLES = 4
@@ -111,7 +111,7 @@ class ProbeResult:
 
     Attributes
     ----------
-    test : {"transplant", "background-swap", "removal"}
+    test : {"transplant", "background-swap", "removal", "residual-transplant"}
     suspect : int
         The class index under test.
     trials, hits, rate : int, int, float

@@ -19,7 +19,7 @@ ACCEPTED = {
     "sticker-object": ["recurring-motif", "localized"],
     "sticker-anywhere": ["recurring-motif", "localized"],
     "background": ["background"],
-    "cast": ["image-wide"],  # a finding kind the audit does not have (yet)
+    "cast": ["image-wide"],
 }
 
 TRAIN_PER_CLASS = 300

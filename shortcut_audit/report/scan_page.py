@@ -241,7 +241,7 @@ def build_figures(audit: dict, files: AuditFiles, *,
         if f.get("class") in means:
             figures[entry["mean"]] = fg.class_mean_png(means[f["class"]], box=f.get("region"))
         _gallery(files, images, entry["paths"], entry["tiles"], entry["scale"],
-                 masks=f.get("kind") == "background", figures=figures)
+                 masks=f.get("kind") in ("background", "image-wide"), figures=figures)
         motif = entry["motif"]
         if motif and motif["medoid"]:
             medoid = files.arrays(motif["medoid"]).get("crop")

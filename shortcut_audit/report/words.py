@@ -32,6 +32,7 @@ KIND_TITLES = {
     "fixed-position": "a region at a fixed place",
     "recurring-motif": "a recurring motif",
     "background": "read from the background",
+    "image-wide": "read from the whole picture",
 }
 STATUS_TITLES = {"suspect": "suspect", "confirmed": "confirmed", "not-confirmed": "not confirmed"}
 STATISTIC_NAMES = {
@@ -189,6 +190,13 @@ def finding_sentence(finding: dict) -> str:
                                 f"is)" if _finite(default) else "")
                 if _finite(survival) else "")
         return f"{head}{tail}: the model may read the surroundings, not the piece."
+    if kind == "image-wide":
+        share = ev.get("median_background_share")
+        return (f"The model reads {cls} from something spread over the whole picture: the "
+                f"backgrounds of {cls} images turn other objects into {cls}, and so does the fine "
+                f"texture cut from the {cls} objects themselves, spread over other images (heat "
+                f"outside the object: {pct(share)}). A grain, a noise or a processing look shared "
+                f"by the {cls} photos, rather than the piece or its backdrop.")
     return f"The model's answers for {cls} depend on a pattern the rules flagged ({kind})."
 
 
@@ -250,6 +258,15 @@ def test_sentence(finding: dict, *, labels: Sequence[str] = ()) -> str | None:
         text = (f"Putting {n} objects of other classes onto backgrounds of {cls} images turned {hits} "
                 f"of them ({pct(rate)}) into {cls}; onto backgrounds of a third class (neither "
                 f"{cls} nor their own), {chits} of {cn} ({pct(crate)}).")
+    elif counts and kind == "residual-transplant":
+        text = (f"Adding the fine texture (noise residual) of {cls} objects over {n} images of other "
+                f"classes turned {hits} of them ({pct(rate)}) into {cls}; the same texture cut from "
+                f"a third class's objects turned {chits} of {cn} ({pct(crate)}).")
+        swap = (finding.get("evidence") or {}).get("background_test")
+        if isinstance(swap, dict) and isinstance(swap.get("hits"), int):
+            text += (f" Their backgrounds alone turned {swap['hits']} of {swap.get('trials')} "
+                     f"({pct(swap.get('rate'))}) into {cls}, against {pct(swap.get('control_rate'))} "
+                     f"for a third class's backgrounds.")
     elif _finite(rate) and _finite(crate):
         text = (f"{pct(rate)} of the test images moved to {cls}, against {pct(crate)} in the "
                 f"control arm.")
