@@ -41,7 +41,7 @@ from scipy import ndimage
 
 from .engine import Job
 from .errors import UsageError
-from .probes import ProbeResult, fisher_greater
+from .outcomes import tally_arms
 
 __all__ = ["FLAT_SIGMA", "MIN_TILES", "SOURCES_PER_TRIAL", "tile_side", "noise_residual",
            "flat_residual_tiles", "mosaic", "residual_transplant_job"]
@@ -212,7 +212,7 @@ def residual_transplant_job(*, own: Sequence[tuple[np.ndarray, np.ndarray, int]]
     Returns
     -------
     Job
-        Its result is a :class:`~shortcut_audit.probes.ProbeResult` with
+        Its result is a :class:`~shortcut_audit.outcomes.ProbeResult` with
         ``test="residual-transplant"``. A trial whose recipient is already predicted
         as ``suspect`` does not count. Examples name the recipient (``target``, an
         index into ``others``); ``extra`` holds ``tile``, ``flat_share``,
@@ -284,34 +284,5 @@ def _transplant(oth_i, rec, test_px, ctrl_px, known, suspect, extra) -> Job:
     k0 = 0 if known is not None else len(used)
     base = {j: (known[j] if known is not None else scores[i]) for i, j in enumerate(used)}
     n = len(rec)
-    after, ctrl = scores[k0:k0 + n], scores[k0 + n:]
-    hits, gains, c_hits, c_gains, rows = [], [], [], [], []
-    ineligible = 0
-    for i, r in enumerate(rec):
-        b = base[r]
-        if not (np.all(np.isfinite(b)) and np.all(np.isfinite(after[i])) and np.all(np.isfinite(ctrl[i]))):
-            continue
-        if int(np.argmax(b)) == suspect:
-            ineligible += 1
-            continue
-        hit = int(np.argmax(after[i])) == suspect
-        hits.append(hit)
-        gains.append(after[i, suspect] - b[suspect])
-        c_hits.append(int(np.argmax(ctrl[i])) == suspect)
-        c_gains.append(ctrl[i, suspect] - b[suspect])
-        rows.append({"source": None, "target": r, "box": None,
-                     "before": {"pred": int(np.argmax(b)), "p": float(b[suspect])},
-                     "after": {"pred": int(np.argmax(after[i])), "p": float(after[i, suspect])},
-                     "control": {"pred": int(np.argmax(ctrl[i])), "p": float(ctrl[i, suspect])},
-                     "hit": hit})
-    m, h = len(hits), int(np.sum(hits))
-    hc = int(np.sum(c_hits))
-    rate, c_rate = (h / m if m else 0.0), (hc / m if m else 0.0)
-    examples = tuple(([r for r in rows if r["hit"]] + [r for r in rows if not r["hit"]])[:4])
-    return ProbeResult(test="residual-transplant", suspect=suspect, trials=m, hits=h, rate=float(rate),
-                       control_trials=m, control_hits=hc, control_rate=float(c_rate),
-                       mean_gain=float(np.mean(gains)) if m else 0.0,
-                       control_mean_gain=float(np.mean(c_gains)) if m else 0.0,
-                       p_value=fisher_greater(h, m - h, hc, m - hc) if m else None,
-                       effect=float(rate - c_rate), examples=examples,
-                       extra=dict(extra, ineligible=ineligible))
+    trials = [(base[r], {"source": None, "target": r, "box": None}) for r in rec]
+    return tally_arms("residual-transplant", suspect, trials, scores[k0:k0 + n], scores[k0 + n:], extra=extra)

@@ -12,7 +12,7 @@ from shortcut_audit.errors import UsageError
 from shortcut_audit.findings import Finding, Thresholds
 from shortcut_audit.imagewide import (flat_residual_tiles, mosaic, noise_residual,
                                       residual_transplant_job, tile_side)
-from shortcut_audit.probes import ProbeResult, fisher_greater
+from shortcut_audit.outcomes import ProbeResult, fisher_greater
 
 
 def test_noise_residual_of_one_bright_pixel_by_hand():

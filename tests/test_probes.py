@@ -23,9 +23,8 @@ from shortcut_audit.errors import UsageError
 from shortcut_audit.model import OnnxClassifier
 from shortcut_audit.motifs import cut_crop
 from shortcut_audit.occlusion import Fill, fill_image
-from shortcut_audit.probes import (
-    ProbeResult, background_swap_job, fisher_greater, paste, removal_job, transplant_job,
-)
+from shortcut_audit.outcomes import ProbeResult, fisher_greater
+from shortcut_audit.probes import background_swap_job, paste, removal_job, transplant_job
 from test_motifs import SIDE, mark_images, mark_setup  # noqa: F401  (mark_setup: a fixture)
 
 BLUR = Fill(kind="blur")

@@ -237,7 +237,7 @@ def test_render_report_is_pure_and_escapes_script_class():
 
 
 def test_render_report_shows_a_counterfactual_test():
-    # The shape of probes.ProbeResult.to_dict(), as confirm.py stores it.
+    # The shape of outcomes.ProbeResult.to_dict(), as confirm.py stores it.
     test = {"test": "transplant", "ran": True, "suspect": 0, "trials": 40, "hits": 31, "rate": 0.775,
             "control_trials": 40, "control_hits": 3, "control_rate": 0.075, "p_value": 1.2e-10,
             "effect": 0.7, "removal": {"images": 10, "accuracy_before": 1.0, "accuracy_after": 0.3},

@@ -340,7 +340,7 @@ def _prediction(x, labels) -> str | None:
 def _test_view(finding: dict, labels: list[str], th: dict) -> dict | None:
     """A finding's counterfactual test as a sentence, rows and an example table.
 
-    Any dict is shown; the keys of probes.ProbeResult get plain names. Example trials
+    Any dict is shown; the keys of outcomes.ProbeResult get plain names. Example trials
     refer to images by their index in the test's own lists, which are not shown.
     """
     test = test_of(finding)
