@@ -30,6 +30,7 @@ scores received are taken to be class probabilities (``Classifier.predict``).
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections.abc import Callable, Sequence
 
@@ -38,7 +39,7 @@ from .engine import Job
 from .errors import UsageError
 from .occlusion import Fill, box_weights, fill_image, perturb
 from .maps import box_pixels, erase_object
-from .outcomes import _arms, _pick_examples, _pred, fisher_greater, tally_arms
+from .outcomes import fisher_greater, tally_arms
 
 __all__ = [
     "PLACEMENTS",
@@ -555,23 +556,9 @@ def _swap(own_px, own_m, oth_px, oth_m, plan, suspect, known) -> Job:
     base_own = {j: (known_own[j] if known_own is not None else scores[i]) for i, j in enumerate(used_own)}
     aw, aw_c = scores[k1:k1 + n], scores[k1 + n:]
 
-    hits, gains, c_hits, c_gains, rows = [], [], [], [], []
-    ineligible = 0
-    for i, (r, d) in enumerate(zip(rec, donor)):
-        b = base_oth[r]
-        if not (np.all(np.isfinite(b)) and _usable(to[i:i + 1])[0] and _usable(to_c[i:i + 1])[0]):
-            continue
-        if int(np.argmax(b)) == suspect:
-            ineligible += 1
-            continue
-        hit = int(np.argmax(to[i])) == suspect
-        hits.append(hit)
-        gains.append(to[i, suspect] - b[suspect])
-        c_hits.append(int(np.argmax(to_c[i])) == suspect)
-        c_gains.append(to_c[i, suspect] - b[suspect])
-        rows.append({"source": d, "target": r, "box": None, "before": _pred(b, suspect),
-                     "after": _pred(to[i], suspect), "control": _pred(to_c[i], suspect),
-                     "hit": hit})
+    to_arm = tally_arms("background-swap", suspect,
+                        [(base_oth[r], {"source": d, "target": r, "box": None}) for r, d in zip(rec, donor)],
+                        to, to_c, extra={"requested": n})
     a_hits, a_c_hits = [], []
     away_ineligible = 0
     for i, o in enumerate(obj):
@@ -584,14 +571,9 @@ def _swap(own_px, own_m, oth_px, oth_m, plan, suspect, known) -> Job:
         a_hits.append(int(np.argmax(aw[i])) != suspect)
         a_c_hits.append(int(np.argmax(aw_c[i])) != suspect)
     na, ha, hac = len(a_hits), int(np.sum(a_hits)), int(np.sum(a_c_hits))
-    extra = {
-        "requested": n, "ineligible": ineligible,
-        "away_trials": na, "away_hits": ha, "away_rate": ha / na if na else 0.0,
-        "away_control_trials": na, "away_control_hits": hac,
-        "away_control_rate": hac / na if na else 0.0,
-        "away_p_value": fisher_greater(ha, na - ha, hac, na - hac) if na else None,
-        "away_ineligible": away_ineligible,
-    }
-    return _arms("background-swap", suspect, np.array(hits, bool), np.array(gains),
-                 np.array(c_hits, bool), np.array(c_gains), examples=_pick_examples(rows),
-                 extra=extra)
+    return dataclasses.replace(to_arm, extra=dict(
+        to_arm.extra,
+        away_trials=na, away_hits=ha, away_rate=ha / na if na else 0.0,
+        away_control_trials=na, away_control_hits=hac, away_control_rate=hac / na if na else 0.0,
+        away_p_value=fisher_greater(ha, na - ha, hac, na - hac) if na else None,
+        away_ineligible=away_ineligible))
