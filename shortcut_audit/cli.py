@@ -385,7 +385,7 @@ def audit(
     test_budget: int = typer.Option(40, "--test-budget", min=4, help="Images per counterfactual test."),
     curve_images: Optional[int] = typer.Option(
         CURVE_IMAGES, "--curve-images", min=1,
-        help="Images a class whose deletion and insertion curves are measured (32 passes each)."),
+        help="Images a class whose deletion and insertion curves are measured (30 passes each)."),
     every_curve: bool = typer.Option(False, "--every-curve", help="Measure the curves of every image."),
     thresholds_file: Optional[Path] = typer.Option(None, "--thresholds", help="TOML file of threshold overrides.",
                                                    exists=True, dir_okay=False),
@@ -395,7 +395,7 @@ def audit(
     cluster: Optional[str] = typer.Option(
         None, "--cluster", metavar="ADDRESS|local:N",
         help='Spread the per-image work on Dask: a scheduler address (tcp://host:8786) or local:N '
-             'worker processes. Needs pip install "shortcut_audit[cluster]".'),
+             'worker processes. Needs pip install "shortcut_audit\\[cluster]".'),
     fail_on: ScanGate = typer.Option(ScanGate.confirmed, "--fail-on", help="Exit 1 when a finding is at least this."),
     cfg: ModelConfig = None, occ: Occlusion = None,
 ):

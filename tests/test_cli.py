@@ -48,6 +48,13 @@ def test_help_shows_the_defaults_written_in_brackets(command, shown):
     assert shown in text, text
 
 
+def test_help_names_the_cluster_extra():
+    # "[cluster]" is rich markup unless escaped: the help once said pip install "shortcut_audit"
+    result = runner.invoke(app, ["audit", "--help"], terminal_width=120, env={"COLUMNS": "120"})
+    text = " ".join(result.output.replace("│", " ").split())
+    assert 'pip install "shortcut_audit[cluster]"' in text, text
+
+
 def test_inspect(setup):
     tmp, data, model = setup
     result = runner.invoke(app, ["inspect", str(model), "--json"])
