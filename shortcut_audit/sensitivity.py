@@ -426,8 +426,9 @@ def image_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None =
         return np.where(np.stack(masks)[..., None], hidden_pixels[None], image[None])
 
     # Decisive area: the ladder (with the curves, in one request; without, step by step
-    # until the decision moves), then bisection between two steps. Each distinct image is scored once: ("hide", k) hides the k hottest pixels, ("show", k) all but them. The
-    # ladder's 25% is the deletion curve's 4/16; hiding every pixel ends the deletion
+    # until the decision moves), then bisection between two steps. Each distinct image
+    # is scored once: ("hide", k) hides the k hottest pixels, ("show", k) all but them.
+    # The ladder's 25% is the deletion curve's 4/16; hiding every pixel ends the deletion
     # curve and starts the insertion curve; hiding none is the unperturbed image; and a
     # bisection midpoint may fall on a curve point.
     n_pixels = h * w
