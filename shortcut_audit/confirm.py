@@ -33,10 +33,11 @@ from .engine import PassEngine
 from .errors import UsageError
 from .findings import MIN_MOTIF_IMAGES, Finding, Thresholds, motif_candidates
 from .imagewide import residual_transplant_job
+from .sufficiency import RECEIVERS, SOURCES, sufficiency_job
 from .motifs import cut_crop, find_motifs
 from .probes import background_swap_job, removal_job, transplant_job
 from .regions import tighten_region
-from .maps import estimate_object_mask
+from .maps import box_pixels, estimate_object_mask
 
 __all__ = ["add_motif_findings", "confirm_findings", "crop_side"]
 
@@ -91,8 +92,10 @@ def _motif(boxed: list, entries: dict[str, ImageEntry], classifier, *, th: Thres
 
 def add_motif_findings(findings: list[Finding], classes: list[ClassSummary],
                        images: list[ImageSummary], entries: dict[str, ImageEntry], classifier, *,
-                       thresholds: Thresholds, plan, max_examples: int = 8) -> list[Finding]:
-    """Findings with recurring motifs added (or merged into fixed-position ones)."""
+                       thresholds: Thresholds, plan, max_examples: int = 8,
+                       seed: int = 0) -> list[Finding]:
+    """Findings with recurring motifs added (or merged into fixed-position ones): from the
+    decisive crops, from the heat peaks off the object, and from the sufficiency scan."""
     th = thresholds
     out = list(findings)
     side = crop_side(plan, min(classifier.height, classifier.width))
@@ -121,6 +124,8 @@ def add_motif_findings(findings: list[Finding], classes: list[ClassSummary],
             out.append(finding)
     out = _small_things_in_backgrounds(out, classes, images, entries, classifier, th=th, side=side,
                                        max_examples=max_examples)
+    out = _sufficient_motifs(out, classes, images, entries, classifier, th=th, side=side,
+                             max_examples=max_examples, seed=seed)
     out.sort(key=lambda f: (f.class_index, ("fixed-position", "localized", "recurring-motif",
                                             "background", "image-wide").index(f.kind)))
     return out
@@ -161,6 +166,112 @@ def _small_things_in_backgrounds(findings: list[Finding], classes: list[ClassSum
         evidence.update(found_in="heat peaks off the object",
                         examples=evidence["member_paths"][:max_examples])
         out[out.index(f)] = dataclasses.replace(f, evidence=dict(f.evidence, motif_candidate=evidence))
+    return out
+
+
+def _box_share(mask: np.ndarray, box) -> float:
+    """Share of the pixels of ``box`` (fractions) that lie on ``mask``."""
+    h, w = mask.shape
+    r0, r1, c0, c1 = box_pixels(box, h, w)
+    return float(mask[r0:r1, c0:c1].mean()) if r1 > r0 and c1 > c0 else 0.0
+
+
+def _sufficient_motifs(findings: list[Finding], classes: list[ClassSummary],
+                       images: list[ImageSummary], entries: dict[str, ImageEntry], classifier, *,
+                       th: Thresholds, side: int, max_examples: int, seed: int) -> list[Finding]:
+    """Recurring motifs among the patches that *suffice* for a class (sufficiency.py).
+
+    Every judged class without a fixed-position or recurring-motif finding is scanned:
+    up to ``SOURCES`` of its correct images with a mask, patches of the motif crop's
+    side on the object, pasted into ``RECEIVERS`` other-class images each from one shared,
+    seeded pool. The crops around the best patches that pull at least ``sufficiency_pull``
+    are clustered; a motif covering ``motif_coverage`` of the sources scanned becomes a
+    ``recurring-motif`` finding (replacing a ``localized`` one), tested like any motif.
+    """
+    out = list(findings)
+    marked = {f.class_index for f in out if f.kind in ("fixed-position", "recurring-motif")}
+    todo = [c for c in classes if c.correct >= th.min_correct_images and c.index not in marked]
+    if not todo:
+        return out
+    rng = np.random.default_rng([int(seed), 7])
+    correct = sorted([im for im in images if im.correct], key=lambda im: im.path)
+    by_class: dict[int, list[ImageSummary]] = {}
+    for im in correct:
+        by_class.setdefault(im.label, []).append(im)
+    # one pool of receivers for every class: a few per class, decoded once
+    per = max(1, -(-SOURCES * RECEIVERS // max(1, len(by_class) - 1)))
+    pool = []
+    for lab in sorted(by_class):
+        ims = by_class[lab]
+        pool += [ims[i] for i in np.sort(rng.choice(len(ims), size=min(per, len(ims)), replace=False))]
+    pool = pool[:max(len(by_class), 4 * SOURCES * RECEIVERS)]
+    picks: dict[int, list[ImageSummary]] = {}
+    for cls in todo:
+        own = by_class.get(cls.index, [])
+        idx = np.sort(rng.choice(len(own), size=min(SOURCES, len(own)), replace=False)) if own else []
+        picks[cls.index] = [own[i] for i in idx]
+    wanted = sorted({im.path for im in pool} | {im.path for ims in picks.values() for im in ims})
+    recs = _records([entries[p] for p in wanted], classifier)
+    jobs, used = [], {}
+    for cls in todo:
+        srcs = [(im, recs[im.path]) for im in picks[cls.index] if im.path in recs]
+        srcs = [(im, r, _mask_of(r)) for im, r in srcs]
+        srcs = [(im, r, m) for im, r, m in srcs if m is not None and m.any() and not m.all()]
+        others = [im for im in pool if im.label != cls.index and im.path in recs]
+        if len(srcs) < MIN_MOTIF_IMAGES or not others:
+            continue
+        receivers = []
+        for _ in srcs:
+            k = rng.choice(len(others), size=min(RECEIVERS, len(others)), replace=False)
+            receivers.append([recs[others[i].path].pixels for i in np.sort(k)])
+        used[cls.index] = srcs
+        jobs.append((cls.index, sufficiency_job(sources=[(r.pixels, m) for _, r, m in srcs],
+                                                receivers=receivers, suspect=cls.index, side=side,
+                                                min_pull=th.sufficiency_pull)))
+    if not jobs:
+        return out
+    engine = PassEngine.for_classifier(classifier)
+    by_index = {c.index: c for c in classes}
+    for index, res in sorted(engine.run(jobs), key=lambda kv: kv[0]):
+        if isinstance(res, Exception):
+            continue
+        srcs = used[index]
+        crops, paths = [], []
+        for (im, rec, _m), r in zip(srcs, res):
+            if r is not None and r["pull"] >= th.sufficiency_pull:
+                crops.append(cut_crop(rec.pixels, r["box"], index=len(crops), min_side=side))
+                paths.append(im.path)
+        motifs = find_motifs(crops, n_images=len(srcs), min_coverage=th.motif_coverage) if crops else []
+        if not motifs:
+            continue
+        motif = max(motifs, key=lambda m: (m.coverage, -m.cohesion))
+        # a thing stuck on the object lies on it; crops that straddle the outline read the
+        # object's silhouette (a part of its shape), which is the object's own evidence
+        masks_by_path = {im.path: m for im, _r, m in srcs}
+        on = float(np.median([_box_share(masks_by_path[paths[i]], crops[i].box) for i in motif.members]))
+        if on < th.object_share:
+            continue
+        cls = by_index[index]
+        evidence = {"statistic": "motif_coverage", "value": motif.coverage, "on_object": on,
+                    "threshold": th.motif_coverage, "spread": motif.spread,
+                    "cohesion": motif.cohesion, "medoid": paths[motif.medoid],
+                    "medoid_box": crops[motif.medoid].box,
+                    "member_paths": [paths[i] for i in motif.members],
+                    "member_boxes": [list(b) for b in motif.boxes], "images": len(srcs),
+                    "found_in": "sufficiency scan",
+                    "sufficiency": {"sources": len(srcs), "pulling": len(crops),
+                                    "pulling_paths": paths, "pulling_boxes": [list(c.box) for c in crops],
+                                    "pulls": [None if r is None else r["pull"] for r in res],
+                                    "threshold": th.sufficiency_pull,
+                                    "passes": int(sum(r["passes"] for r in res if r is not None))}}
+        finding = Finding(id="", class_name=cls.name, class_index=index, kind="recurring-motif",
+                          region=None, evidence=evidence,
+                          examples=tuple(evidence["member_paths"][:max_examples]))
+        local = next((f for f in out if f.class_index == index and f.kind == "localized"), None)
+        if local is not None:
+            out[out.index(local)] = dataclasses.replace(finding, evidence=dict(evidence, localized=local.evidence))
+        else:
+            out.append(finding)
     return out
 
 
@@ -306,6 +417,14 @@ def confirm_findings(findings: list[Finding], images: list[ImageSummary],
             test_sources[k] = [f.evidence["medoid"]]
             boxed = [(im, r) for im, r in own_r if im.decisive_box is not None]
             boxes = [im.decisive_box for im, _ in boxed]
+            if f.evidence.get("found_in") == "sufficiency scan":
+                # hide the motif where the scan found it: is it needed, or only sufficient?
+                suff = f.evidence["sufficiency"]
+                members, member_boxes = suff["pulling_paths"], suff["pulling_boxes"]
+                have = {**recs, **_records([entries[p] for p in members if p not in recs], classifier)}
+                own_im = {im.path: im for im in by_class.get(f.class_index, []) if im.correct}
+                boxed = [(own_im[p], have[p]) for p in members if p in have and p in own_im]
+                boxes = [b for p, b in zip(members, member_boxes) if p in have and p in own_im]
             own_r = boxed
             placement = "on-object"
         else:

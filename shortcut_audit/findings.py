@@ -71,6 +71,8 @@ THRESHOLD_TABLE: tuple[tuple[str, float, str], ...] = (
      "share of a class's images whose decisive crops fall in one cluster of near-alike crops"),
     ("motif_margin", 0.15,
      "how far a class's small-area rate must exceed the other classes' before its crops are clustered"),
+    ("sufficiency_pull", 0.5,
+     "share of other classes' images a patch of a class's image, pasted at the same place, must turn into the class for its crop to join the sufficiency scan's motif search"),
     ("flat_tile_share", 0.25,
      "share of an object's places, the flattest, whose noise residual the image-wide test spreads over other images (flat places hold a grain, not the object's edges)"),
     ("confirm_alpha", 0.01,
@@ -103,6 +105,7 @@ class Thresholds:
     background_reliance_margin: float = 0.25
     motif_coverage: float = 0.30
     motif_margin: float = 0.15
+    sufficiency_pull: float = 0.5
     flat_tile_share: float = 0.25
     confirm_alpha: float = 0.01
     confirm_effect: float = 0.20

@@ -349,7 +349,8 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
     findings = judge(classes, summaries, thresholds=settings.thresholds)
     by_path = {e.path: e for e in usable}
     findings = add_motif_findings(findings, classes, summaries, by_path, classifier,
-                                  thresholds=settings.thresholds, plan=settings.plan)
+                                  thresholds=settings.thresholds, plan=settings.plan,
+                                  seed=settings.seed)
     findings = [dataclasses.replace(f, id=f"F{i + 1}") for i, f in enumerate(findings)]
     if settings.confirm:
         findings = confirm_findings(findings, summaries, by_path, classifier,

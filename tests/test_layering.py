@@ -21,7 +21,7 @@ LAYERS = {
     "foundation": {"errors", "_version", "store"},
     # the computation (numpy, scipy, scikit-image) and the two input edges
     "core": {"occlusion", "engine", "maps", "sensitivity", "adaptive", "regions", "classes", "findings",
-             "motifs", "outcomes", "probes", "imagewide", "confirm", "cost", "intervals", "options", "listing", "dataset",
+             "motifs", "outcomes", "probes", "imagewide", "sufficiency", "confirm", "cost", "intervals", "options", "listing", "dataset",
              "model"},
     # runs that return a result and keep their JSON through store.py; they draw nothing
     "pipeline": {"perimage", "scan", "cluster", "comparison", "compare", "heatmap"},

@@ -1,0 +1,93 @@
+"""Tests of sufficiency.py: patches of a class's images that turn other images into the class."""
+
+import numpy as np
+import pytest
+
+from shortcut_audit.engine import run_job
+from shortcut_audit.errors import UsageError
+from shortcut_audit.sufficiency import grid_places, sufficiency_job
+
+SIZE = 32
+MARK = np.array([250.0, 20.0, 200.0], np.float32)       # a magenta sticker no scene has
+
+
+def sticker_reader(batch):
+    """Class 0 when a 4x4 block of the magenta sticker colour is present anywhere, else
+    class 1 or 2 by brightness: a model that takes the sticker as sufficient."""
+    out = []
+    for img in np.asarray(batch, np.float32):
+        hit = np.all(np.abs(img - MARK) < 1.0, axis=2).astype(np.float32)
+        win = np.lib.stride_tricks.sliding_window_view(hit, (4, 4)).sum(axis=(2, 3)).max()
+        bright = float(img.mean())
+        out.append([10.0 if win >= 16 else 0.0, 4.0 if bright < 120 else 0.0, 4.0 if bright >= 120 else 0.0])
+    z = np.asarray(out)
+    z = np.exp(z - z.max(axis=1, keepdims=True))
+    return z / z.sum(axis=1, keepdims=True)
+
+
+def _source(rng, at):
+    img = np.full((SIZE, SIZE, 3), 90.0, np.float32)
+    m = np.zeros((SIZE, SIZE), bool)
+    m[8:24, 8:24] = True
+    img[m] = rng.uniform(140, 200, 3)
+    r, c = at
+    img[r:r + 4, c:c + 4] = MARK
+    return img, m
+
+
+def test_grid_places_by_hand():
+    m = np.zeros((8, 8), bool)
+    m[:4, :4] = True
+    # a 4x4 patch at stride 2: rows and columns 0, 2, 4; centres (2, 2) is on the object only at (0, 0)
+    assert grid_places(m, 4, 2) == [(0, 0)]
+    assert grid_places(np.ones((8, 8), bool), 4, 2) == [(r, c) for r in (0, 2, 4) for c in (0, 2, 4)]
+    # the last place touches the edge even when the stride does not reach it
+    assert grid_places(np.ones((7, 7), bool), 4, 2) == [(r, c) for r in (0, 2, 3) for c in (0, 2, 3)]
+
+
+def test_the_patch_that_holds_the_sticker_is_found_and_narrowed():
+    rng = np.random.default_rng(0)
+    # stickers at even offsets, so a 4x4 sub-patch at stride 2 can hold one whole
+    sources = [_source(rng, at) for at in [(10, 10), (16, 12), (12, 18)]]
+    receivers = [[np.full((SIZE, SIZE, 3), v, np.float32) for v in (60.0, 80.0, 200.0)]] * 3
+    res = run_job(sticker_reader, sufficiency_job(sources=sources, receivers=receivers, suspect=0,
+                                                  side=8, min_pull=0.5))
+    for (img, _m), r in zip(sources, res):
+        assert r["pull"] == 1.0
+        x0, y0, x1, y1 = (int(round(v * SIZE)) for v in r["box"])
+        # narrowed to a 4x4 sub-patch that holds the whole sticker
+        assert (x1 - x0, y1 - y0) == (4, 4)
+        assert np.all(np.abs(img[y0:y1, x0:x1] - MARK) < 1.0)
+    # passes: places on the object (8x8 patches, stride 4, centre on the 16x16 object)
+    # times 3 receivers, then 9 sub-patches times 3 receivers
+    places = len(grid_places(sources[0][1], 8, 4))
+    assert res[0]["passes"] == places * 3 + 9 * 3
+
+
+def test_a_source_without_a_sufficient_patch_is_not_narrowed():
+    rng = np.random.default_rng(1)
+    img, m = _source(rng, (10, 10))
+    img[10:14, 10:14] = 150.0                               # no sticker
+    res = run_job(sticker_reader, sufficiency_job(sources=[(img, m)], receivers=[[np.full((SIZE, SIZE, 3), 60.0)]],
+                                                  suspect=0, side=8, min_pull=0.5))
+    assert res[0]["pull"] == 0.0
+    assert res[0]["passes"] == len(grid_places(m, 8, 4))      # the grid only
+
+
+def test_bad_input_says_what_to_do():
+    rng = np.random.default_rng(0)
+    src = _source(rng, (10, 10))
+    with pytest.raises(UsageError, match="one list per source"):
+        sufficiency_job(sources=[src], receivers=[], suspect=0, side=8, min_pull=0.5)
+    with pytest.raises(UsageError, match="model's input shape"):
+        sufficiency_job(sources=[src], receivers=[[np.zeros((8, 8, 3))]], suspect=0, side=8, min_pull=0.5)
+    with pytest.raises(UsageError, match="min_pull must be a share"):
+        sufficiency_job(sources=[src], receivers=[[src[0]]], suspect=0, side=8, min_pull=2.0)
+
+
+def test_doctests():
+    import doctest
+
+    import shortcut_audit.sufficiency as module
+    result = doctest.testmod(module)
+    assert result.attempted > 0 and result.failed == 0
