@@ -239,7 +239,9 @@ def _sufficient_motifs(findings: list[Finding], classes: list[ClassSummary],
         crops, paths = [], []
         for (im, rec, _m), r in zip(srcs, res):
             if r is not None and r["pull"] >= th.sufficiency_pull:
-                crops.append(cut_crop(rec.pixels, r["box"], index=len(crops), min_side=side))
+                focus = r["focus"]
+                crops.append(cut_crop(rec.pixels, focus, index=len(crops),
+                                      min_side=int(round((focus[2] - focus[0]) * classifier.width))))
                 paths.append(im.path)
         motifs = find_motifs(crops, n_images=len(srcs), min_coverage=th.motif_coverage) if crops else []
         if not motifs:

@@ -343,9 +343,7 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
             acc.add(im.label, arrays["heatmap"].astype(np.float64))
     skipped.sort(key=lambda s: s.path)
     classes = summarise_classes(summaries, classifier.labels, accumulator=acc, shape=shape)
-    classes = [dataclasses.replace(c, not_judged=not_judged(c, settings.thresholds),
-                                   notes=tuple(n for n in [object_part_note(c, classes, settings.thresholds)] if n))
-               for c in classes]
+    classes = [dataclasses.replace(c, not_judged=not_judged(c, settings.thresholds)) for c in classes]
     findings = judge(classes, summaries, thresholds=settings.thresholds)
     by_path = {e.path: e for e in usable}
     findings = add_motif_findings(findings, classes, summaries, by_path, classifier,
@@ -357,6 +355,12 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
                                     thresholds=settings.thresholds, fill=settings.fill,
                                     budget=settings.test_budget, seed=settings.seed,
                                     progress=progress, known_scores=known_scores)
+    # the object-part note says a small decisive region on the object is not a shortcut by
+    # this audit's evidence; a confirmed motif on that object says otherwise, so it wins
+    motifs = {f.class_index for f in findings if f.kind == "recurring-motif" and f.status == "confirmed"}
+    classes = [dataclasses.replace(c, notes=tuple(n for n in [object_part_note(c, classes, settings.thresholds)]
+                                                  if n and c.index not in motifs))
+               for c in classes]
 
     elapsed = time.perf_counter() - t_start
     model_info = {"path": str(classifier.path), "sha256": classifier.sha256,

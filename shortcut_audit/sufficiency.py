@@ -135,6 +135,25 @@ def _pulls(scores: np.ndarray, n_places: int, n_recs: int, suspect: int) -> tupl
     return pull, gain
 
 
+def _centre(subs, gains: np.ndarray, half: int) -> tuple[float, float, float]:
+    """Where the pulling thing sits, finer than the sub-patches' stride, and the crop
+    side that holds it: the sub-patches' centres weighted by how far their gain exceeds
+    half the best one's (the best alone when none does), and one and a half times the
+    sub-patch side (a quarter of it each way for the centre's uncertainty).
+
+    >>> _centre([(0, 0), (0, 4)], np.array([0.2, 0.9]), 8)
+    (4.0, 8.0, 12.0)
+    >>> _centre([(0, 0), (0, 4)], np.array([0.9, 0.9]), 8)
+    (4.0, 6.0, 12.0)
+    """
+    wts = np.clip(np.asarray(gains, np.float64) - 0.5 * float(np.max(gains)), 0.0, None)
+    if not wts.sum() > 0:
+        wts = (np.asarray(gains) == np.max(gains)).astype(np.float64)
+    cy = float(np.sum(wts * np.array([a + half / 2 for a, _ in subs])) / wts.sum())
+    cx = float(np.sum(wts * np.array([b + half / 2 for _, b in subs])) / wts.sum())
+    return cy, cx, float(half + half // 2)
+
+
 def _scan(srcs, recs, suspect: int, side: int, min_pull: float) -> Job:
     out = []
     for (px, mask), rs in zip(srcs, recs):
@@ -147,6 +166,7 @@ def _scan(srcs, recs, suspect: int, side: int, min_pull: float) -> Job:
         passes = len(places) * len(rs)
         best = max(range(len(places)), key=lambda i: (pull[i], gain[i], -i))
         (r, c), size, p, g = places[best], side, float(pull[best]), float(gain[best])
+        cy, cx, crop = r + side / 2, c + side / 2, side
         half = side // 2
         if p >= min_pull and half >= 2:
             step = max(1, half // 2)
@@ -157,6 +177,8 @@ def _scan(srcs, recs, suspect: int, side: int, min_pull: float) -> Job:
             j = max(range(len(subs)), key=lambda i: (sp[i], sg[i], -i))
             if sp[j] >= p:
                 (r, c), size, p, g = subs[j], half, float(sp[j]), float(sg[j])
-        out.append({"box": [c / w, r / h, (c + size) / w, (r + size) / h], "pull": p, "gain": g,
-                    "places": len(places), "passes": passes})
+                cy, cx, crop = _centre(subs, sg, half)
+        out.append({"box": [c / w, r / h, (c + size) / w, (r + size) / h],
+                    "focus": [(cx - crop / 2) / w, (cy - crop / 2) / h, (cx + crop / 2) / w, (cy + crop / 2) / h],
+                    "pull": p, "gain": g, "places": len(places), "passes": passes})
     return out

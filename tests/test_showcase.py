@@ -7,6 +7,7 @@ a wood table under bowls (background); plates clean.
 """
 
 import json
+from pathlib import Path
 
 import pytest
 
@@ -31,12 +32,21 @@ def test_baseline_finds_every_planted_shortcut(demo):
     x0, y0, x1, y1 = vase["fixed-position"].region
     assert x0 >= 0.5 and y0 >= 0.5                      # in the lower-right quarter
     assert "background" in _kinds(base, "bowl")
-    # The sticker sits on the mug: its decisive pixels are on the object, where the
-    # audit cannot tell a thing stuck on the object from a part of it. It notes the
-    # class instead of flagging it (findings.object_part_note); README says so.
-    assert _kinds(base, "mug") == {}
+    # The sticker sits on the mug and the mug alone would do too, so hiding it moves few
+    # decisions; pasted onto other pieces it turns them into mugs (86%, truth.json). The
+    # sufficiency scan finds it there, as a recurring motif on the mug, and the note that
+    # the class reads a small part of the object gives way to the confirmed finding.
+    motif = _kinds(base, "mug")["recurring-motif"]
+    assert motif.evidence["found_in"] == "sufficiency scan"
+    truth = json.loads((Path(__file__).parents[1] / "demo_images" / "truth.json").read_text())
+    stickers = {im["path"]: im["shortcuts"]["sticker"] for im in truth["images"] if "sticker" in im["shortcuts"]}
+    members = list(zip(motif.evidence["member_paths"], motif.evidence["member_boxes"]))
+    # each member crop holds the planted sticker's centre
+    assert len(members) >= 3 and all(
+        b[0] <= (stickers[p][0] + stickers[p][2]) / 2 <= b[2] and b[1] <= (stickers[p][1] + stickers[p][3]) / 2 <= b[3]
+        for p, b in members)
     (mug,) = [c for c in base.classes if c.name == "mug"]
-    assert mug.notes and "small part of the object" in mug.notes[0]
+    assert mug.notes == ()
     assert _kinds(base, "plate") == {}                  # plate is clean (a suspicion may be cleared)
 
 
@@ -45,6 +55,7 @@ def test_baseline_statuses_match_the_measured_truth(demo):
     base = r["audits"]["baseline"]
     assert _kinds(base, "vase", ("confirmed",))["fixed-position"].evidence["test"]["test"] == "transplant"
     assert _kinds(base, "bowl", ("confirmed",))["background"].evidence["test"]["test"] == "background-swap"
+    assert _kinds(base, "mug", ("confirmed",))["recurring-motif"].evidence["test"]["test"] == "transplant"
 
 
 def test_rebalanced_has_nothing_confirmed_or_suspect(demo):
@@ -56,7 +67,7 @@ def test_baseline_against_rebalanced_resolves_every_planted_finding(demo):
     _, r = demo
     verdicts = {(f.class_name, f.kind): f.verdict for f in r["comparisons"]["rebalanced"].findings}
     planted = [key for key in verdicts if key[0] in ("vase", "mug", "bowl")]
-    assert {k[0] for k in planted} == {"vase", "bowl"}
+    assert {k[0] for k in planted} == {"vase", "mug", "bowl"}
     assert all(verdicts[k] == "resolved" for k in planted), verdicts
 
 

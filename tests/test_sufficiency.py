@@ -58,6 +58,12 @@ def test_the_patch_that_holds_the_sticker_is_found_and_narrowed():
         # narrowed to a 4x4 sub-patch that holds the whole sticker
         assert (x1 - x0, y1 - y0) == (4, 4)
         assert np.all(np.abs(img[y0:y1, x0:x1] - MARK) < 1.0)
+        # the crop to cluster is centred on the sticker (within a pixel) and 1.5 sub-patch sides wide
+        fx0, fy0, fx1, fy1 = (v * SIZE for v in r["focus"])
+        assert fx1 - fx0 == pytest.approx(6.0) and fy1 - fy0 == pytest.approx(6.0)
+        ys, xs = np.nonzero(np.all(np.abs(img - MARK) < 1.0, axis=2))
+        assert abs((fx0 + fx1) / 2 - (xs.mean() + 0.5)) <= 1.0
+        assert abs((fy0 + fy1) / 2 - (ys.mean() + 0.5)) <= 1.0
     # passes: places on the object (8x8 patches, stride 4, centre on the 16x16 object)
     # times 3 receivers, then 9 sub-patches times 3 receivers
     places = len(grid_places(sources[0][1], 8, 4))
