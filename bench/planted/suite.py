@@ -122,6 +122,19 @@ VARIANTS = [
        note="clean, four classes, strided convs"),
     _m("v-clean-6", 48, ["fish", "kite", "beetle", "block", "mushroom", "shell"], 96, "nhwc", "logits",
        "plain3", note="clean, six classes, 96 px"),
+    # Added after the sufficiency scan's rules were fixed (2026-12-03) and never used to
+    # change them: stickers on the object that the model may read as well as the object,
+    # and a clean model of objects with small inner details.
+    _m("v-sticker-starfish", 49, ["leaf", "shell", "starfish", "mushroom"], 80, "nhwc", "probs", "avgmax",
+       [{"name": "sticker", "kind": "sticker-object", "class": "starfish", "share": 0.9, "size": 0.12,
+         "colour": [60, 220, 90]}],
+       note="a green sticker somewhere on 90% of the starfish"),
+    _m("v-sticker-block", 50, ["kite", "block", "beetle", "shell", "fish"], 96, "nchw", "logits", "avgmax",
+       [{"name": "sticker", "kind": "sticker-object", "class": "block", "share": 0.9, "size": 0.11,
+         "colour": [250, 70, 70]}],
+       note="a red sticker somewhere on 90% of the blocks"),
+    _m("v-clean-5b", 51, ["beetle", "moth", "butterfly", "fish", "mushroom"], 112, "nchw", "logits", "avgmax",
+       train_per_class=200, epochs=10, note="clean, five classes of objects with small inner details, 112 px"),
 ]
 
 #: The suites: their models and the folder of their ONNX files and truth.json.
