@@ -9,7 +9,10 @@ so no pixels are kept from the first half:
    (:func:`~shortcut_audit.motifs.find_motifs`). A cluster covering ``motif_coverage``
    of the class's correct images becomes a ``recurring-motif`` finding (replacing a
    ``localized`` one for that class: it says more), or, for a ``fixed-position``
-   class, evidence added to that finding.
+   class, evidence added to that finding. Every other judged class gets the
+   sufficiency scan (sufficiency.py): patches of its objects pasted into other classes'
+   images; the crops of those that pull are clustered the same way, so a sticker the
+   model reads as well as the object (hiding it moves nothing) is found too.
 2. **Tests.** Each finding gets the test that fits its kind: a transplant at the same
    place (fixed-position), a transplant of the medoid crop onto other objects
    (recurring-motif), a transplant of each image's own decisive region (localized),

@@ -72,7 +72,8 @@ class CostEstimate:
         The session's measured passes per second.
     seconds : float
         Expected wall time: ``passes / (rate * ENGINE_SHARE) + FIXED_SECONDS`` (the
-        counterfactual tests come on top, a few hundred passes per finding).
+        counterfactual tests and the sufficiency scan come on top, a few hundred passes
+        per finding and per class).
     per_class : dict
         ``{N: {"images": ..., "seconds": ...}}``: the same with at most N images a class.
     """

@@ -347,8 +347,9 @@ def object_part_note(cls: ClassSummary, classes: list[ClassSummary],
     price sticker): pasted onto other images, both pull them to the class, and on the
     planted-shortcut suite small clean objects' own parts were confirmed that way. So
     the class gets this note, not a shortcut finding. A thing that recurs alike on the
-    object is still found as a recurring motif; a sticker that does not is missed,
-    and the note says where to look.
+    object is still found as a recurring motif, from the decisive crops or by the
+    sufficiency scan (sufficiency.py); the audit drops the note when such a motif is
+    confirmed on the class.
     """
     th = thresholds or Thresholds()
     if cls.correct < th.min_correct_images or not _localized(cls, classes, th):

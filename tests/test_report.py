@@ -357,6 +357,21 @@ def test_background_sentence_states_no_reliance_the_empty_scene_rate_explains():
     assert "may read the surroundings" in text and "(against 10% of other classes' images" in text
 
 
+def test_motif_sentence_says_how_the_motif_was_found():
+    # A motif found by the sufficiency scan pulls other images when pasted but decides few
+    # answers when hidden: its sentence must not say that it decides them.
+    from shortcut_audit.report.words import finding_sentence
+
+    heat = {"class": "mug", "kind": "recurring-motif", "evidence": {"statistic": "motif_coverage", "value": 0.4}}
+    pasted = dict(heat, evidence=dict(heat["evidence"], found_in="sufficiency scan",
+                                      sufficiency={"sources": 8, "pulling": 7}))
+    assert "decides many answers" in finding_sentence(heat)
+    text = finding_sentence(pasted)
+    assert "decides many answers" not in text
+    assert "turns them into mug (7 of 8 mug images scanned had such a patch)" in text
+    assert "hiding them changes few answers" in text
+
+
 def test_render_report_shows_notes_and_classes_not_judged():
     audit = hand_made_audit()
     audit["classes"][1]["notes"] = ["decisions hinge on a small part of the object itself"]

@@ -162,6 +162,17 @@ def finding_sentence(finding: dict) -> str:
                 f"{pct(ev.get('value'))} of the correctly recognised images of {cls}, against "
                 f"{pct(ev.get('others_median'))} for the other classes: the model leans on a "
                 f"small detail rather than on the whole object.")
+    if kind == "recurring-motif" and ev.get("found_in") == "sufficiency scan":
+        suff = ev.get("sufficiency") or {}
+        pulling, sources = suff.get("pulling"), suff.get("sources")
+        count = (f" ({pulling} of {sources} {cls} images scanned had such a patch)"
+                 if isinstance(pulling, int) and isinstance(sources, int) else "")
+        return (f"A small patch of the {cls} objects, pasted at the same place onto other "
+                f"images, turns them into {cls}{count}, and these patches look the same from "
+                f"image to image wherever they sit, although hiding them changes few answers: "
+                f"the model reads them as well as the object. A repeated mark such as a sticker "
+                f"or a stamp, or a part of the object that looks the same on every piece: look "
+                f"at the crops.")
     if kind == "recurring-motif":
         return (f"The small region that decides many answers for {cls} looks the same from "
                 f"image to image wherever it sits: a repeated mark, such as a sticker or a "
