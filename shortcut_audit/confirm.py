@@ -179,6 +179,13 @@ def _box_share(mask: np.ndarray, box) -> float:
     return float(mask[r0:r1, c0:c1].mean()) if r1 > r0 and c1 > c0 else 0.0
 
 
+#: Images in the sufficiency scan's shared pool of receivers, and classes at most that
+#: contribute to it (a seeded choice of them when there are more).
+_POOL = 4 * SOURCES * RECEIVERS
+#: Classes whose sources the sufficiency scan decodes and scans at once.
+_CLASSES_AT_ONCE = 8
+
+
 def _sufficient_motifs(findings: list[Finding], classes: list[ClassSummary],
                        images: list[ImageSummary], entries: dict[str, ImageEntry], classifier, *,
                        th: Thresholds, side: int, max_examples: int, seed: int) -> list[Finding]:
@@ -197,87 +204,100 @@ def _sufficient_motifs(findings: list[Finding], classes: list[ClassSummary],
     if not todo:
         return out
     rng = np.random.default_rng([int(seed), 7])
+    by_index = {c.index: c for c in classes}
     correct = sorted([im for im in images if im.correct], key=lambda im: im.path)
     by_class: dict[int, list[ImageSummary]] = {}
     for im in correct:
         by_class.setdefault(im.label, []).append(im)
-    # one pool of receivers for every class: a few per class, decoded once
-    per = max(1, -(-SOURCES * RECEIVERS // max(1, len(by_class) - 1)))
+    # one pool of receivers for every class, decoded once: a few images a class, from at
+    # most POOL classes (a seeded choice of them in a large label space)
+    labels = sorted(by_class)
+    if len(labels) > _POOL:
+        labels = sorted(int(v) for v in rng.choice(labels, size=_POOL, replace=False))
+    per = max(1, -(-SOURCES * RECEIVERS // max(1, len(labels) - 1)))
     pool = []
-    for lab in sorted(by_class):
+    for lab in labels:
         ims = by_class[lab]
         pool += [ims[i] for i in np.sort(rng.choice(len(ims), size=min(per, len(ims)), replace=False))]
-    pool = pool[:max(len(by_class), 4 * SOURCES * RECEIVERS)]
+    pool = pool[:max(len(labels), _POOL)]
     picks: dict[int, list[ImageSummary]] = {}
     for cls in todo:
         own = by_class.get(cls.index, [])
         idx = np.sort(rng.choice(len(own), size=min(SOURCES, len(own)), replace=False)) if own else []
         picks[cls.index] = [own[i] for i in idx]
-    wanted = sorted({im.path for im in pool} | {im.path for ims in picks.values() for im in ims})
-    recs = _records([entries[p] for p in wanted], classifier)
-    jobs, used = [], {}
-    for cls in todo:
-        srcs = [(im, recs[im.path]) for im in picks[cls.index] if im.path in recs]
-        srcs = [(im, r, _mask_of(r)) for im, r in srcs]
-        srcs = [(im, r, m) for im, r, m in srcs if m is not None and m.any() and not m.all()]
-        others = [im for im in pool if im.label != cls.index and im.path in recs]
-        if len(srcs) < MIN_MOTIF_IMAGES or not others:
-            continue
-        receivers = []
-        for _ in srcs:
-            k = rng.choice(len(others), size=min(RECEIVERS, len(others)), replace=False)
-            receivers.append([recs[others[i].path].pixels for i in np.sort(k)])
-        used[cls.index] = srcs
-        jobs.append((cls.index, sufficiency_job(sources=[(r.pixels, m) for _, r, m in srcs],
-                                                receivers=receivers, suspect=cls.index, side=side,
-                                                min_pull=th.sufficiency_pull)))
-    if not jobs:
-        return out
+    pool_recs = _records([entries[im.path] for im in pool], classifier)
     engine = PassEngine.for_classifier(classifier)
-    by_index = {c.index: c for c in classes}
-    for index, res in sorted(engine.run(jobs), key=lambda kv: kv[0]):
-        if isinstance(res, Exception):
-            continue
-        srcs = used[index]
-        crops, paths = [], []
-        for (im, rec, _m), r in zip(srcs, res):
-            if r is not None and r["pull"] >= th.sufficiency_pull:
-                focus = r["focus"]
-                crops.append(cut_crop(rec.pixels, focus, index=len(crops),
-                                      min_side=int(round((focus[2] - focus[0]) * classifier.width))))
-                paths.append(im.path)
-        motifs = find_motifs(crops, n_images=len(srcs), min_coverage=th.motif_coverage) if crops else []
-        if not motifs:
-            continue
-        motif = max(motifs, key=lambda m: (m.coverage, -m.cohesion))
-        # a thing stuck on the object lies on it; crops that straddle the outline read the
-        # object's silhouette (a part of its shape), which is the object's own evidence
-        masks_by_path = {im.path: m for im, _r, m in srcs}
-        on = float(np.median([_box_share(masks_by_path[paths[i]], crops[i].box) for i in motif.members]))
-        if on < th.object_share:
-            continue
-        cls = by_index[index]
-        evidence = {"statistic": "motif_coverage", "value": motif.coverage, "on_object": on,
-                    "threshold": th.motif_coverage, "spread": motif.spread,
-                    "cohesion": motif.cohesion, "medoid": paths[motif.medoid],
-                    "medoid_box": crops[motif.medoid].box,
-                    "member_paths": [paths[i] for i in motif.members],
-                    "member_boxes": [list(b) for b in motif.boxes], "images": len(srcs),
-                    "found_in": "sufficiency scan",
-                    "sufficiency": {"sources": len(srcs), "pulling": len(crops),
-                                    "pulling_paths": paths, "pulling_boxes": [list(c.box) for c in crops],
-                                    "pulls": [None if r is None else r["pull"] for r in res],
-                                    "threshold": th.sufficiency_pull,
-                                    "passes": int(sum(r["passes"] for r in res if r is not None))}}
-        finding = Finding(id="", class_name=cls.name, class_index=index, kind="recurring-motif",
-                          region=None, evidence=evidence,
-                          examples=tuple(evidence["member_paths"][:max_examples]))
-        local = next((f for f in out if f.class_index == index and f.kind == "localized"), None)
-        if local is not None:
-            out[out.index(local)] = dataclasses.replace(finding, evidence=dict(evidence, localized=local.evidence))
-        else:
-            out.append(finding)
+    # a few classes at a time, so that only their sources are decoded at once
+    for start in range(0, len(todo), _CLASSES_AT_ONCE):
+        chunk = todo[start:start + _CLASSES_AT_ONCE]
+        recs = {**pool_recs, **_records([entries[im.path] for c in chunk for im in picks[c.index]
+                                          if im.path not in pool_recs], classifier)}
+        jobs, used = [], {}
+        for cls in chunk:
+            srcs = [(im, recs[im.path]) for im in picks[cls.index] if im.path in recs]
+            srcs = [(im, r, _mask_of(r)) for im, r in srcs]
+            srcs = [(im, r, m) for im, r, m in srcs if m is not None and m.any() and not m.all()]
+            others = [im for im in pool if im.label != cls.index and im.path in recs]
+            if len(srcs) < MIN_MOTIF_IMAGES or not others:
+                continue
+            receivers = []
+            for _ in srcs:
+                k = rng.choice(len(others), size=min(RECEIVERS, len(others)), replace=False)
+                receivers.append([recs[others[i].path].pixels for i in np.sort(k)])
+            used[cls.index] = srcs
+            jobs.append((cls.index, sufficiency_job(sources=[(r.pixels, m) for _, r, m in srcs],
+                                                    receivers=receivers, suspect=cls.index, side=side,
+                                                    min_pull=th.sufficiency_pull)))
+        for index, res in sorted(engine.run(jobs), key=lambda kv: kv[0]) if jobs else []:
+            if isinstance(res, Exception):
+                continue
+            finding = _sufficient_motif(by_index[index], used[index], res, classifier, th=th,
+                                        max_examples=max_examples)
+            if finding is None:
+                continue
+            local = next((f for f in out if f.class_index == index and f.kind == "localized"), None)
+            if local is not None:
+                out[out.index(local)] = dataclasses.replace(finding, evidence=dict(finding.evidence,
+                                                                                   localized=local.evidence))
+            else:
+                out.append(finding)
     return out
+
+
+def _sufficient_motif(cls: ClassSummary, srcs: list, res: list, classifier, *, th: Thresholds,
+                      max_examples: int) -> Finding | None:
+    """The recurring-motif finding of one class's sufficiency scan (None: no motif)."""
+    crops, paths = [], []
+    for (im, rec, _m), r in zip(srcs, res):
+        if r is not None and r["pull"] >= th.sufficiency_pull:
+            focus = r["focus"]
+            crops.append(cut_crop(rec.pixels, focus, index=len(crops),
+                                  min_side=int(round((focus[2] - focus[0]) * classifier.width))))
+            paths.append(im.path)
+    motifs = find_motifs(crops, n_images=len(srcs), min_coverage=th.motif_coverage) if crops else []
+    if not motifs:
+        return None
+    motif = max(motifs, key=lambda m: (m.coverage, -m.cohesion))
+    # a thing stuck on the object lies on it; crops that straddle the outline read the
+    # object's silhouette (a part of its shape), which is the object's own evidence
+    masks_by_path = {im.path: m for im, _r, m in srcs}
+    on = float(np.median([_box_share(masks_by_path[paths[i]], crops[i].box) for i in motif.members]))
+    if on < th.object_share:
+        return None
+    evidence = {"statistic": "motif_coverage", "value": motif.coverage, "on_object": on,
+                "threshold": th.motif_coverage, "spread": motif.spread,
+                "cohesion": motif.cohesion, "medoid": paths[motif.medoid],
+                "medoid_box": crops[motif.medoid].box,
+                "member_paths": [paths[i] for i in motif.members],
+                "member_boxes": [list(b) for b in motif.boxes], "images": len(srcs),
+                "found_in": "sufficiency scan",
+                "sufficiency": {"sources": len(srcs), "pulling": len(crops),
+                                "pulling_paths": paths, "pulling_boxes": [list(c.box) for c in crops],
+                                "pulls": [None if r is None else r["pull"] for r in res],
+                                "threshold": th.sufficiency_pull,
+                                "passes": int(sum(r["passes"] for r in res if r is not None))}}
+    return Finding(id="", class_name=cls.name, class_index=cls.index, kind="recurring-motif",
+                   region=None, evidence=evidence, examples=tuple(evidence["member_paths"][:max_examples]))
 
 
 def _with_motif_candidates(findings: list[Finding]) -> tuple[list[Finding], set[int]]:

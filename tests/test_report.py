@@ -369,7 +369,9 @@ def test_motif_sentence_says_how_the_motif_was_found():
     text = finding_sentence(pasted)
     assert "decides many answers" not in text
     assert "turns them into mug (7 of 8 mug images scanned had such a patch)" in text
-    assert "hiding them changes few answers" in text
+    assert "Hidden where" not in text                  # no removal test: nothing said of hiding
+    tested = dict(pasted, evidence=dict(pasted["evidence"], test={"removal": {"drop": 2 / 7, "images": 7}}))
+    assert "they change the answer for 29% of those 7 images" in finding_sentence(tested)
 
 
 def test_render_report_shows_notes_and_classes_not_judged():

@@ -97,3 +97,50 @@ def test_doctests():
     import shortcut_audit.sufficiency as module
     result = doctest.testmod(module)
     assert result.attempted > 0 and result.failed == 0
+
+
+def test_receivers_with_nan_scores_count_as_not_pulled():
+    # One receiver of three scores NaN and the other two are pulled: the pull is 2/3, not
+    # 2/2. A hand count of the shares.
+    rng = np.random.default_rng(2)
+    src = _source(rng, (10, 10))
+    nan_grey = 77.0
+
+    def reader(batch):
+        out = sticker_reader(batch)
+        for i, img in enumerate(np.asarray(batch, np.float32)):
+            if abs(float(img[0, 0, 0]) - nan_grey) < 1e-3:
+                out[i] = np.nan
+        return out
+
+    recs = [[np.full((SIZE, SIZE, 3), v, np.float32) for v in (60.0, nan_grey, 200.0)]]
+    res = run_job(reader, sufficiency_job(sources=[src], receivers=recs, suspect=0, side=8, min_pull=0.5))
+    assert res[0]["pull"] == pytest.approx(2 / 3)
+
+
+def test_focus_stays_inside_the_image_at_its_edge():
+    # A sticker in the corner: the focus box is clamped into the image, still holding it.
+    rng = np.random.default_rng(3)
+    img = np.full((SIZE, SIZE, 3), 90.0, np.float32)
+    m = np.zeros((SIZE, SIZE), bool)
+    m[:12, :12] = True
+    img[m] = rng.uniform(140, 200, 3)
+    img[0:4, 0:4] = MARK
+    res = run_job(sticker_reader, sufficiency_job(sources=[(img, m)], receivers=[[np.full((SIZE, SIZE, 3), 60.0)]],
+                                                  suspect=0, side=8, min_pull=0.5))
+    fx0, fy0, fx1, fy1 = res[0]["focus"]
+    assert 0.0 <= fx0 and 0.0 <= fy0 and fx1 <= 1.0 and fy1 <= 1.0
+    assert fx0 == pytest.approx(0.0) and fy0 == pytest.approx(0.0)
+    assert (fx1 - fx0) * SIZE == pytest.approx(6.0)
+
+
+def test_an_odd_half_side_still_reaches_the_patch_edge():
+    # side 10: sub-patches of 5 at stride 2 start at 0, 2, 4 and 5, so the last column of
+    # the patch is covered (16 sub-patches, not 9).
+    rng = np.random.default_rng(4)
+    src = _source(rng, (10, 10))
+    res = run_job(sticker_reader, sufficiency_job(sources=[src], receivers=[[np.full((SIZE, SIZE, 3), 60.0)]],
+                                                  suspect=0, side=10, min_pull=0.5))
+    places = len(grid_places(src[1], 10, 5))
+    assert res[0]["pull"] == 1.0
+    assert res[0]["passes"] == places + 16

@@ -167,12 +167,15 @@ def finding_sentence(finding: dict) -> str:
         pulling, sources = suff.get("pulling"), suff.get("sources")
         count = (f" ({pulling} of {sources} {cls} images scanned had such a patch)"
                  if isinstance(pulling, int) and isinstance(sources, int) else "")
+        removal = (ev.get("test") or {}).get("removal") or {}
+        drop, n = removal.get("drop"), removal.get("images")
+        hidden = (f" Hidden where they were found, they change the answer for {pct(drop)} of "
+                  f"those {n} images." if _finite(drop) and isinstance(n, int) else "")
         return (f"A small patch of the {cls} objects, pasted at the same place onto other "
                 f"images, turns them into {cls}{count}, and these patches look the same from "
-                f"image to image wherever they sit, although hiding them changes few answers: "
-                f"the model reads them as well as the object. A repeated mark such as a sticker "
-                f"or a stamp, or a part of the object that looks the same on every piece: look "
-                f"at the crops.")
+                f"image to image wherever they sit: the model takes them on their own as a "
+                f"sign of {cls}.{hidden} A repeated mark such as a sticker or a stamp, or a "
+                f"part of the object that looks the same on every piece: look at the crops.")
     if kind == "recurring-motif":
         return (f"The small region that decides many answers for {cls} looks the same from "
                 f"image to image wherever it sits: a repeated mark, such as a sticker or a "
