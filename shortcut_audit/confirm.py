@@ -96,9 +96,11 @@ def _motif(boxed: list, entries: dict[str, ImageEntry], classifier, *, th: Thres
 def add_motif_findings(findings: list[Finding], classes: list[ClassSummary],
                        images: list[ImageSummary], entries: dict[str, ImageEntry], classifier, *,
                        thresholds: Thresholds, plan, max_examples: int = 8,
-                       seed: int = 0) -> list[Finding]:
+                       seed: int = 0) -> tuple[list[Finding], dict[int, str]]:
     """Findings with recurring motifs added (or merged into fixed-position ones): from the
-    decisive crops, from the heat peaks off the object, and from the sufficiency scan."""
+    decisive crops, from the heat peaks off the object, and from the sufficiency scan; and,
+    per class index, why the sufficiency scan did not run on a class it should have
+    scanned (a reason for the class's ``not_judged``)."""
     th = thresholds
     out = list(findings)
     side = crop_side(plan, min(classifier.height, classifier.width))
@@ -127,11 +129,11 @@ def add_motif_findings(findings: list[Finding], classes: list[ClassSummary],
             out.append(finding)
     out = _small_things_in_backgrounds(out, classes, images, entries, classifier, th=th, side=side,
                                        max_examples=max_examples)
-    out = _sufficient_motifs(out, classes, images, entries, classifier, th=th, side=side,
-                             max_examples=max_examples, seed=seed)
+    out, unscanned = _sufficient_motifs(out, classes, images, entries, classifier, th=th, side=side,
+                                        max_examples=max_examples, seed=seed)
     out.sort(key=lambda f: (f.class_index, ("fixed-position", "localized", "recurring-motif",
                                             "background", "image-wide").index(f.kind)))
-    return out
+    return out, unscanned
 
 
 def _small_things_in_backgrounds(findings: list[Finding], classes: list[ClassSummary],
@@ -188,8 +190,10 @@ _CLASSES_AT_ONCE = 8
 
 def _sufficient_motifs(findings: list[Finding], classes: list[ClassSummary],
                        images: list[ImageSummary], entries: dict[str, ImageEntry], classifier, *,
-                       th: Thresholds, side: int, max_examples: int, seed: int) -> list[Finding]:
-    """Recurring motifs among the patches that *suffice* for a class (sufficiency.py).
+                       th: Thresholds, side: int, max_examples: int,
+                       seed: int) -> tuple[list[Finding], dict[int, str]]:
+    """Recurring motifs among the patches that *suffice* for a class (sufficiency.py), and
+    why the scan did not run on a class (by class index).
 
     Every judged class without a fixed-position or recurring-motif finding is scanned:
     up to ``SOURCES`` of its correct images with a mask, patches of the motif crop's
@@ -199,10 +203,11 @@ def _sufficient_motifs(findings: list[Finding], classes: list[ClassSummary],
     ``recurring-motif`` finding (replacing a ``localized`` one), tested like any motif.
     """
     out = list(findings)
+    unscanned: dict[int, str] = {}
     marked = {f.class_index for f in out if f.kind in ("fixed-position", "recurring-motif")}
     todo = [c for c in classes if c.correct >= th.min_correct_images and c.index not in marked]
     if not todo:
-        return out
+        return out, unscanned
     rng = np.random.default_rng([int(seed), 7])
     by_index = {c.index: c for c in classes}
     correct = sorted([im for im in images if im.correct], key=lambda im: im.path)
@@ -238,7 +243,14 @@ def _sufficient_motifs(findings: list[Finding], classes: list[ClassSummary],
             srcs = [(im, r, _mask_of(r)) for im, r in srcs]
             srcs = [(im, r, m) for im, r, m in srcs if m is not None and m.any() and not m.all()]
             others = [im for im in pool if im.label != cls.index and im.path in recs]
-            if len(srcs) < MIN_MOTIF_IMAGES or not others:
+            if len(srcs) < MIN_MOTIF_IMAGES:
+                unscanned[cls.index] = (
+                    f"sufficiency scan not run: {len(srcs)} of {len(picks[cls.index])} sampled correct "
+                    f"images had a usable object mask (it needs {MIN_MOTIF_IMAGES}; give masks that outline "
+                    f"the object with --masks)")
+                continue
+            if not others:
+                unscanned[cls.index] = "sufficiency scan not run: no other class's image to paste into"
                 continue
             receivers = []
             for _ in srcs:
@@ -250,6 +262,7 @@ def _sufficient_motifs(findings: list[Finding], classes: list[ClassSummary],
                                                     min_pull=th.sufficiency_pull)))
         for index, res in sorted(engine.run(jobs), key=lambda kv: kv[0]) if jobs else []:
             if isinstance(res, Exception):
+                unscanned[index] = f"sufficiency scan failed: {(str(res).splitlines() or [type(res).__name__])[0]}"
                 continue
             finding = _sufficient_motif(by_index[index], used[index], res, classifier, th=th,
                                         max_examples=max_examples)
@@ -261,7 +274,7 @@ def _sufficient_motifs(findings: list[Finding], classes: list[ClassSummary],
                                                                                    localized=local.evidence))
             else:
                 out.append(finding)
-    return out
+    return out, unscanned
 
 
 def _sufficient_motif(cls: ClassSummary, srcs: list, res: list, classifier, *, th: Thresholds,

@@ -346,9 +346,11 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
     classes = [dataclasses.replace(c, not_judged=not_judged(c, settings.thresholds)) for c in classes]
     findings = judge(classes, summaries, thresholds=settings.thresholds)
     by_path = {e.path: e for e in usable}
-    findings = add_motif_findings(findings, classes, summaries, by_path, classifier,
-                                  thresholds=settings.thresholds, plan=settings.plan,
-                                  seed=settings.seed)
+    findings, unscanned = add_motif_findings(findings, classes, summaries, by_path, classifier,
+                                             thresholds=settings.thresholds, plan=settings.plan,
+                                             seed=settings.seed)
+    classes = [dataclasses.replace(c, not_judged=c.not_judged + (unscanned[c.index],))
+               if c.index in unscanned else c for c in classes]
     findings = [dataclasses.replace(f, id=f"F{i + 1}") for i, f in enumerate(findings)]
     if settings.confirm:
         findings = confirm_findings(findings, summaries, by_path, classifier,

@@ -4,6 +4,7 @@ order, and which classes the rules could not judge.
 Reference values are worked by hand from the class metrics given in each test.
 """
 
+import numpy as np
 import pytest
 
 from scan_fixtures import corner_model, make_dataset
@@ -115,3 +116,22 @@ def test_motif_candidates_need_a_margin_and_three_small_images():
     images = [im(0, i, 0.01) for i in range(3)] + [im(2, i, 0.01) for i in range(2)]
     assert MIN_MOTIF_IMAGES == 3
     assert [c.name for c in motif_candidates(classes, images)] == ["a"]
+
+
+def test_a_class_the_sufficiency_scan_could_not_scan_says_so(tmp_path):
+    # beta's masks cover the whole image, so no patch has an outline to lie inside and the
+    # sufficiency scan has no usable source: audit.json must say the scan did not run on
+    # beta, rather than let "no finding" read as "scanned, nothing found".
+    from PIL import Image
+
+    data = make_dataset(tmp_path / "data", n=6, masks_root=tmp_path / "masks")
+    for m in (tmp_path / "masks" / "beta").iterdir():
+        Image.fromarray(np.full((48, 48), 255, np.uint8)).save(m)
+    result = run_audit(data, corner_model(tmp_path / "m.onnx"), masks=tmp_path / "masks",
+                       settings=ScanSettings(confirm=False))
+    by_name = {c.name: c for c in result.classes}
+    reasons = [r for r in by_name["beta"].not_judged if r.startswith("sufficiency scan not run")]
+    assert reasons == ["sufficiency scan not run: 0 of 6 sampled correct images had a usable "
+                       "object mask (it needs 3; give masks that outline the object with --masks)"]
+    assert not any(r.startswith("sufficiency") for r in by_name["gamma"].not_judged)
+    assert reasons[0] in result.to_dict()["classes"][1]["not_judged"]
