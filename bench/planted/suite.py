@@ -135,6 +135,14 @@ VARIANTS = [
        note="a red sticker somewhere on 90% of the blocks"),
     _m("v-clean-5b", 51, ["beetle", "moth", "butterfly", "fish", "mushroom"], 112, "nchw", "logits", "avgmax",
        train_per_class=200, epochs=10, note="clean, five classes of objects with small inner details, 112 px"),
+    # Added later the same day, after the sufficiency scan's review fixes, as a further
+    # check; not used to change any rule.
+    _m("v-sticker-fish", 52, ["fish", "leaf", "kite", "shell"], 128, "nhwc", "logits", "avgmax",
+       [{"name": "sticker", "kind": "sticker-object", "class": "fish", "share": 0.9, "size": 0.10,
+         "colour": [250, 220, 40]}],
+       train_per_class=200, epochs=10, note="a yellow sticker somewhere on 90% of the fish, 128 px"),
+    _m("v-clean-4b", 53, ["beetle", "starfish", "block", "moth"], 64, "nchw", "probs", "plain3",
+       note="clean, four classes with small beetles, 64 px"),
 ]
 
 #: The suites: their models and the folder of their ONNX files and truth.json.
