@@ -109,7 +109,8 @@ def with_more_findings(audit_dir: Path, dest: Path) -> Path:
          "examples": beta},
         {"id": "F3", "class": "gamma", "kind": "recurring-motif", "status": "suspect", "region": None,
          "evidence": {"statistic": "coverage", "value": 0.5, "threshold": 0.3, "medoid": gamma[0],
-                      "members": gamma[1:4]},
+                      "members": gamma[1:4], "member_paths": gamma[1:4],
+                      "member_boxes": [[0.25, 0.25, 0.5, 0.5], [0.5, 0.0, 0.75, 0.25], [0.0, 0.5, 0.25, 0.75]]},
          "examples": gamma[:2]},
     ]
     (dest / "audit.json").write_text(json.dumps(audit))
@@ -186,6 +187,12 @@ def test_pack_of_tested_background_and_motif_findings(more):
     motif = manifest(out / "F3-recurring-motif-gamma")
     # examples (gamma 0, 1), then the medoid (gamma 0) and the members (gamma 1-3), each once.
     assert [r["original"] for r in motif] == [f"gamma/gamma_{i:02d}.png" for i in range(4)]
+    # the motif's members are outlined where their crop was cut; the medoid, given without
+    # a box, keeps its decisive box
+    assert [r["region_source"] for r in motif[1:]] == ["motif crop"] * 3
+    assert [r["decisive_region"] for r in motif[1:]] == [
+        "0.2500 0.2500 0.5000 0.5000", "0.5000 0.0000 0.7500 0.2500", "0.0000 0.5000 0.2500 0.7500"]
+    assert motif[0]["region_source"] in ("decisive", "hottest 5%", "")
 
 
 def test_pack_of_one_finding_replaces_an_earlier_pack(more, tmp_path):
