@@ -95,12 +95,14 @@ def _motif(boxed: list, entries: dict[str, ImageEntry], classifier, *, th: Thres
 
 def add_motif_findings(findings: list[Finding], classes: list[ClassSummary],
                        images: list[ImageSummary], entries: dict[str, ImageEntry], classifier, *,
-                       thresholds: Thresholds, plan, max_examples: int = 8,
-                       seed: int = 0) -> tuple[list[Finding], dict[int, str]]:
+                       thresholds: Thresholds, plan, max_examples: int = 8, seed: int = 0,
+                       progress: Callable[[dict], None] | None = None) -> tuple[list[Finding], dict[int, str]]:
     """Findings with recurring motifs added (or merged into fixed-position ones): from the
     decisive crops, from the heat peaks off the object, and from the sufficiency scan; and,
     per class index, why the sufficiency scan did not run on a class it should have
-    scanned (a reason for the class's ``not_judged``)."""
+    scanned (a reason for the class's ``not_judged``). ``progress`` receives
+    ``{"phase": "sufficiency", "done": classes, "total": classes, ...}`` as the
+    sufficiency scan goes."""
     th = thresholds
     out = list(findings)
     side = crop_side(plan, min(classifier.height, classifier.width))
@@ -130,7 +132,7 @@ def add_motif_findings(findings: list[Finding], classes: list[ClassSummary],
     out = _small_things_in_backgrounds(out, classes, images, entries, classifier, th=th, side=side,
                                        max_examples=max_examples)
     out, unscanned = _sufficient_motifs(out, classes, images, entries, classifier, th=th, side=side,
-                                        max_examples=max_examples, seed=seed)
+                                        max_examples=max_examples, seed=seed, progress=progress)
     out.sort(key=lambda f: (f.class_index, ("fixed-position", "localized", "recurring-motif",
                                             "background", "image-wide").index(f.kind)))
     return out, unscanned
@@ -190,8 +192,8 @@ _CLASSES_AT_ONCE = 8
 
 def _sufficient_motifs(findings: list[Finding], classes: list[ClassSummary],
                        images: list[ImageSummary], entries: dict[str, ImageEntry], classifier, *,
-                       th: Thresholds, side: int, max_examples: int,
-                       seed: int) -> tuple[list[Finding], dict[int, str]]:
+                       th: Thresholds, side: int, max_examples: int, seed: int,
+                       progress: Callable[[dict], None] | None = None) -> tuple[list[Finding], dict[int, str]]:
     """Recurring motifs among the patches that *suffice* for a class (sufficiency.py), and
     why the scan did not run on a class (by class index).
 
@@ -232,6 +234,13 @@ def _sufficient_motifs(findings: list[Finding], classes: list[ClassSummary],
         picks[cls.index] = [own[i] for i in idx]
     pool_recs = _records([entries[im.path] for im in pool], classifier)
     engine = PassEngine.for_classifier(classifier)
+
+    def report(done: int) -> None:
+        if progress is not None:
+            progress({"phase": "sufficiency", "done": done, "total": len(todo),
+                      "passes": engine.stats.passes, "passes_per_second": engine.stats.passes_per_second})
+
+    report(0)
     # a few classes at a time, so that only their sources are decoded at once
     for start in range(0, len(todo), _CLASSES_AT_ONCE):
         chunk = todo[start:start + _CLASSES_AT_ONCE]
@@ -274,6 +283,7 @@ def _sufficient_motifs(findings: list[Finding], classes: list[ClassSummary],
                                                                                    localized=local.evidence))
             else:
                 out.append(finding)
+        report(min(start + _CLASSES_AT_ONCE, len(todo)))
     return out, unscanned
 
 

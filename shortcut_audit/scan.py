@@ -348,7 +348,7 @@ def audit(images: str | os.PathLike, model: str | os.PathLike | OnnxClassifier, 
     by_path = {e.path: e for e in usable}
     findings, unscanned = add_motif_findings(findings, classes, summaries, by_path, classifier,
                                              thresholds=settings.thresholds, plan=settings.plan,
-                                             seed=settings.seed)
+                                             seed=settings.seed, progress=progress)
     classes = [dataclasses.replace(c, not_judged=c.not_judged + (unscanned[c.index],))
                if c.index in unscanned else c for c in classes]
     findings = [dataclasses.replace(f, id=f"F{i + 1}") for i, f in enumerate(findings)]

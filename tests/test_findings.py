@@ -127,10 +127,17 @@ def test_a_class_the_sufficiency_scan_could_not_scan_says_so(tmp_path):
     data = make_dataset(tmp_path / "data", n=6, masks_root=tmp_path / "masks")
     for m in (tmp_path / "masks" / "beta").iterdir():
         Image.fromarray(np.full((48, 48), 255, np.uint8)).save(m)
+    events = []
     result = run_audit(data, corner_model(tmp_path / "m.onnx"), masks=tmp_path / "masks",
-                       settings=ScanSettings(confirm=False))
+                       settings=ScanSettings(confirm=False), progress=events.append)
     by_name = {c.name: c for c in result.classes}
     reasons = [r for r in by_name["beta"].not_judged if r.startswith("sufficiency scan not run")]
+    # the scan reports its progress over the classes it should scan: every judged class
+    # without a fixed-position or motif finding
+    marked = {f.class_name for f in result.findings if f.kind in ("fixed-position", "recurring-motif")}
+    todo = [c for c in result.classes if c.name not in marked]
+    phase = [e for e in events if e.get("phase") == "sufficiency"]
+    assert phase[0]["done"] == 0 and phase[-1]["done"] == phase[-1]["total"] == len(todo) >= 2
     assert reasons == ["sufficiency scan not run: 0 of 6 sampled correct images had a usable "
                        "object mask (it needs 3; give masks that outline the object with --masks)"]
     assert not any(r.startswith("sufficiency") for r in by_name["gamma"].not_judged)
