@@ -57,7 +57,7 @@ PLAN_ARGS = ["--no-confirm", "--no-report", "--patch", "4", "--stride", "4"]
 MODEL_ARGS = ["--threads", "1", "--batch-size", "16"]
 FAST_ARGS = PLAN_ARGS + MODEL_ARGS
 # the progress bar's final render and the cost stated before the audit, on stderr
-PROGRESS = re.compile(r"^(audit images\b|cost: )")
+PROGRESS = re.compile(r"^(audit (images|sufficiency|tests)\b|cost: )")
 
 
 # ------------------------------------------------------------------------ helpers
