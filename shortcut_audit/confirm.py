@@ -40,7 +40,7 @@ from .sufficiency import RECEIVERS, SOURCES, sufficiency_job
 from .motifs import cut_crop, find_motifs
 from .probes import background_swap_job, removal_job, transplant_job
 from .regions import tighten_region
-from .maps import box_pixels, estimate_object_mask
+from .maps import box_share, estimate_object_mask
 
 __all__ = ["add_motif_findings", "confirm_findings", "crop_side"]
 
@@ -176,13 +176,6 @@ def _small_things_in_backgrounds(findings: list[Finding], classes: list[ClassSum
     return out
 
 
-def _box_share(mask: np.ndarray, box) -> float:
-    """Share of the pixels of ``box`` (fractions) that lie on ``mask``."""
-    h, w = mask.shape
-    r0, r1, c0, c1 = box_pixels(box, h, w)
-    return float(mask[r0:r1, c0:c1].mean()) if r1 > r0 and c1 > c0 else 0.0
-
-
 #: Images in the sufficiency scan's shared pool of receivers, and classes at most that
 #: contribute to it (a seeded choice of them when there are more).
 _POOL = 4 * SOURCES * RECEIVERS
@@ -226,7 +219,6 @@ def _sufficient_motifs(findings: list[Finding], classes: list[ClassSummary],
     for lab in labels:
         ims = by_class[lab]
         pool += [ims[i] for i in np.sort(rng.choice(len(ims), size=min(per, len(ims)), replace=False))]
-    pool = pool[:max(len(labels), _POOL)]
     picks: dict[int, list[ImageSummary]] = {}
     for cls in todo:
         own = by_class.get(cls.index, [])
@@ -304,7 +296,7 @@ def _sufficient_motif(cls: ClassSummary, srcs: list, res: list, classifier, *, t
     # a thing stuck on the object lies on it; crops that straddle the outline read the
     # object's silhouette (a part of its shape), which is the object's own evidence
     masks_by_path = {im.path: m for im, _r, m in srcs}
-    on = float(np.median([_box_share(masks_by_path[paths[i]], crops[i].box) for i in motif.members]))
+    on = float(np.median([box_share(masks_by_path[paths[i]], crops[i].box) for i in motif.members]))
     if on < th.object_share:
         return None
     evidence = {"statistic": "motif_coverage", "value": motif.coverage, "on_object": on,

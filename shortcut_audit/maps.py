@@ -20,7 +20,7 @@ from scipy import ndimage
 
 from .errors import ImageSkip, UsageError
 
-__all__ = ["Heatmap", "check_image", "check_finite", "concentration", "gini", "heat_order", "box_of", "box_pixels", "box_iou", "boxes_overlap",
+__all__ = ["Heatmap", "check_image", "check_finite", "concentration", "gini", "heat_order", "box_of", "box_pixels", "box_share", "box_iou", "boxes_overlap",
            "peak_box", "curve_area", "background_share", "erase_object", "erase_background",
            "estimate_object_mask"]
 
@@ -164,6 +164,18 @@ def box_pixels(box: Sequence[float], height: int, width: int) -> tuple[int, int,
     r1 = min(max(int(round(y1 * height)), r0 + 1), height)
     c1 = min(max(int(round(x1 * width)), c0 + 1), width)
     return r0, r1, c0, c1
+
+
+def box_share(mask: np.ndarray, box: Sequence[float]) -> float:
+    """Share of the pixels of ``box`` (fractions, as :func:`box_pixels` maps it) on ``mask``.
+
+    >>> m = np.zeros((4, 4), bool); m[:, :2] = True
+    >>> box_share(m, [0.25, 0.0, 0.75, 1.0])
+    0.5
+    """
+    h, w = np.shape(mask)
+    r0, r1, c0, c1 = box_pixels(box, h, w)
+    return float(np.asarray(mask)[r0:r1, c0:c1].mean())
 
 
 def boxes_overlap(a, b) -> bool:

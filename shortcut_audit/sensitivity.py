@@ -34,7 +34,7 @@ import numpy as np
 
 from .engine import NEXT, Job, Request, run_job
 from .errors import UsageError
-from .maps import (Heatmap, _top_mask, background_share, box_of, box_pixels, check_finite as _check_finite,  # noqa: F401
+from .maps import (Heatmap, _top_mask, background_share, box_of, box_share, check_finite as _check_finite,  # noqa: F401
                    check_image as _check_image, concentration, curve_area, erase_background,
                    erase_object, estimate_object_mask, gini, heat_order, peak_box)
 from .occlusion import (AdaptivePlan, Fill, Plan, RandomPatchPlan, SmoothMaskPlan, fill_image,
@@ -545,8 +545,7 @@ def image_job(image: np.ndarray, *, plan: Plan, fill: Fill, target: int | None =
             on_object = float((decisive_pixels & mask).sum() / decisive_pixels.sum())
             cover = float((decisive_pixels & mask).sum() / mask.sum()) if mask.any() else None
         if the_peak is not None:
-            r0, r1, c0, c1 = box_pixels(the_peak, h, w)
-            peak_on = float(mask[r0:r1, c0:c1].mean())
+            peak_on = box_share(mask, the_peak)
         if erase_batch:
             tail = erased
             erased_pred = int(np.argmax(tail[0]))

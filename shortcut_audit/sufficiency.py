@@ -42,6 +42,7 @@ import numpy as np
 
 from .engine import Job
 from .errors import UsageError
+from .occlusion import GridPlan, paste_into, patch_boxes
 
 __all__ = ["SOURCES", "RECEIVERS", "sufficiency_job", "grid_places"]
 
@@ -69,9 +70,8 @@ def grid_places(mask: np.ndarray, side: int, stride: int) -> list[tuple[int, int
     if not (1 <= side <= min(h, w)) or stride < 1:
         raise UsageError(f"patch side must be between 1 and {min(h, w)} and stride at least 1; "
                          f"got {side} and {stride}.")
-    rows = sorted(set(list(range(0, h - side + 1, stride)) + [h - side]))
-    cols = sorted(set(list(range(0, w - side + 1, stride)) + [w - side]))
-    return [(r, c) for r in rows for c in cols if mask[r + side // 2, c + side // 2]]
+    boxes = patch_boxes(GridPlan(patch=int(side), stride=int(stride)), h, w)
+    return [(int(r), int(c)) for r, _, c, _ in boxes if mask[r + side // 2, c + side // 2]]
 
 
 def sufficiency_job(*, sources: Sequence[tuple[np.ndarray, np.ndarray]],
@@ -116,14 +116,14 @@ def sufficiency_job(*, sources: Sequence[tuple[np.ndarray, np.ndarray]],
 
 
 def _paste_all(src: np.ndarray, recs: list[np.ndarray], places, side: int) -> np.ndarray:
-    out = []
-    for r, c in places:
-        patch = src[r:r + side, c:c + side]
-        for rec in recs:
-            im = rec.copy()
-            im[r:r + side, c:c + side] = patch
-            out.append(im)
-    return np.stack(out)
+    """Each receiver with the ``side`` patch of ``src`` at each place, place by place."""
+    boxes = np.array([[r, r + side, c, c + side] for r, c in places], dtype=np.int64)
+    out = np.empty((len(places) * len(recs),) + src.shape, dtype=np.float32)
+    for j, rec in enumerate(recs):
+        rows = out[j::len(recs)]            # a view: receiver j under every place
+        rows[...] = rec
+        paste_into(rows, boxes, src)
+    return out
 
 
 def _pulls(scores: np.ndarray, n_places: int, n_recs: int, suspect: int) -> tuple[np.ndarray, np.ndarray]:
@@ -173,9 +173,9 @@ def _scan(srcs, recs, suspect: int, side: int, min_pull: float) -> Job:
         cy, cx, crop = r + side / 2, c + side / 2, side
         half = side // 2
         if p >= min_pull and half >= 2:
-            step = max(1, half // 2)
-            offsets = sorted(set(range(0, side - half + 1, step)) | {side - half})
-            subs = sorted({(r + dr, c + dc) for dr in offsets for dc in offsets})
+            # the half-size sub-patches of the patch: a grid inside it, reaching its edges
+            inner = patch_boxes(GridPlan(patch=half, stride=max(1, half // 2)), side, side)
+            subs = [(r + int(dr), c + int(dc)) for dr, _, dc, _ in inner]
             sp, sg = _pulls((yield _paste_all(px, rs, subs, half)), len(subs), len(rs), suspect)
             passes += len(subs) * len(rs)
             j = max(range(len(subs)), key=lambda i: (sp[i], sg[i], -i))
