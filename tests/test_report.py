@@ -383,3 +383,29 @@ def test_render_report_shows_notes_and_classes_not_judged():
     assert "note: decisions hinge on a small part of the object itself" in body
     assert "Not judged:" in body and "not judged: only 1 correctly predicted image" in body
     assert "A class the rules could not judge is not a clean class." in body
+
+
+def test_motif_strip_cuts_each_image_where_the_motif_was_found():
+    # A motif found by pasting sits where its evidence says, not at the image's decisive
+    # region: the strip cuts it there (box [x0, y0, x1, y1] 0.5-1.0 of an 8x8 image is
+    # pixels 4-8), and falls back to the stored decisive crop for an image with no box.
+    from shortcut_audit.report.scan_page import _motif_boxes, _motif_crop
+
+    pixels = np.arange(8 * 8 * 3, dtype=np.float32).reshape(8, 8, 3)
+    stored = np.zeros((2, 2, 3), np.float32)
+
+    class Files:
+        def pixels(self, path):
+            return pixels
+
+        def arrays(self, path):
+            return {"crop": stored}
+
+    finding = {"kind": "recurring-motif",
+               "evidence": {"medoid": "a.png", "medoid_box": [0.5, 0.5, 1.0, 1.0],
+                            "member_paths": ["a.png", "b.png"],
+                            "member_boxes": [[0.5, 0.5, 1.0, 1.0], [0.0, 0.0, 0.25, 0.5]]}}
+    boxes = _motif_boxes(finding)
+    assert np.array_equal(_motif_crop(Files(), "a.png", boxes), pixels[4:8, 4:8])
+    assert np.array_equal(_motif_crop(Files(), "b.png", boxes), pixels[0:4, 0:2])
+    assert _motif_crop(Files(), "c.png", boxes) is stored

@@ -24,6 +24,7 @@ from pathlib import Path, PurePosixPath
 import numpy as np
 
 from ..findings import THRESHOLD_TABLE
+from ..maps import box_pixels
 from ..options import some_names
 from ..store import ResultStore, dumps, write_bytes_atomic
 from . import figures as fg
@@ -166,6 +167,29 @@ def gallery_scale(heatmaps: list[np.ndarray]) -> float:
     return max(float(np.percentile(pos, GALLERY_TOP_PERCENTILE)), 1e-12)
 
 
+def _motif_boxes(finding: dict) -> dict[str, list]:
+    """Where a motif's crop was cut in each of its images (path -> box), from its evidence."""
+    ev = finding.get("evidence") or {}
+    if finding.get("kind") != "recurring-motif":
+        ev = ev.get("motif") if isinstance(ev.get("motif"), dict) else {}
+    out = {p: b for p, b in zip(ev.get("member_paths") or [], ev.get("member_boxes") or [])
+           if isinstance(p, str) and isinstance(b, (list, tuple)) and len(b) == 4}
+    if isinstance(ev.get("medoid"), str) and isinstance(ev.get("medoid_box"), (list, tuple)):
+        out.setdefault(ev["medoid"], ev["medoid_box"])
+    return out
+
+
+def _motif_crop(files: AuditFiles, path: str, boxes: dict[str, list]) -> np.ndarray | None:
+    """The motif's crop in image ``path``: cut at its box when the evidence gives one (a motif
+    found by pasting is not where the image's decisive region is), else the stored crop."""
+    box = boxes.get(path)
+    pixels = files.pixels(path) if box is not None else None
+    if pixels is None:
+        return files.arrays(path).get("crop")
+    r0, r1, c0, c1 = box_pixels(box, pixels.shape[0], pixels.shape[1])
+    return pixels[r0:r1, c0:c1]
+
+
 def _gallery(files: AuditFiles, images: dict, paths: list[str], names: list[str], scale: str,
              *, masks: bool, figures: dict[str, bytes]) -> None:
     loaded = []
@@ -244,8 +268,9 @@ def build_figures(audit: dict, files: AuditFiles, *,
                  masks=f.get("kind") in ("background", "image-wide"), figures=figures)
         motif = entry["motif"]
         if motif and motif["medoid"]:
-            medoid = files.arrays(motif["medoid"]).get("crop")
-            crops = [files.arrays(p).get("crop") for p in motif["members"]]
+            boxes = _motif_boxes(f)
+            medoid = _motif_crop(files, motif["medoid"], boxes)
+            crops = [_motif_crop(files, p, boxes) for p in motif["members"]]
             if medoid is not None and medoid.size:
                 figures[motif["figure"]] = fg.crops_strip_png(medoid, [c for c in crops if c is not None])
     curves = _mean_curves(audit, files)
