@@ -57,6 +57,9 @@ from shortcut_audit.model import ModelConfig, read_model_config  # noqa: E402
 from shortcut_audit.occlusion import GridPlan, plan_from_dict  # noqa: E402
 from shortcut_audit.scan import ScanSettings  # noqa: E402
 from shortcut_audit.sensitivity import CURVE_IMAGES, DECISIVE_LADDER  # noqa: E402
+from shortcut_audit.classes import SMALL_AREA  # noqa: E402
+
+import stability as _stability  # noqa: E402
 
 BEGIN = "<!-- agreement:begin -->"
 END = "<!-- agreement:end -->"
@@ -224,6 +227,11 @@ def ladder_step(area: float | None) -> int:
     return bisect.bisect_left(DECISIVE_LADDER, area - 1e-12)
 
 
+def _small(area: float | None) -> bool:
+    """The call the small-area rule reads of an image: decisive area at most SMALL_AREA."""
+    return area is not None and area <= SMALL_AREA + 1e-12
+
+
 def box_iou(a, b) -> float:
     """maps.box_iou, with no box on either side counted as agreement (NaN: left out)
     and a box on one side only as none."""
@@ -260,6 +268,7 @@ def compare(ref, cand) -> dict:
     common = sorted(set(a) & set(b))
     within = [abs(ladder_step(a[p].decisive_area) - ladder_step(b[p].decisive_area)) <= 1 for p in common]
     same_step = [ladder_step(a[p].decisive_area) == ladder_step(b[p].decisive_area) for p in common]
+    small_call = [_small(a[p].decisive_area) == _small(b[p].decisive_area) for p in common]
     metric_diff: dict[str, float] = {}
     ca = {c.name: c.metrics for c in ref.classes}
     for c in cand.classes:
@@ -277,6 +286,7 @@ def compare(ref, cand) -> dict:
         "region_iou_min": min(ious) if ious else None,
         "decisive_within_step": float(np.mean(within)) if within else float("nan"),
         "decisive_same_step": float(np.mean(same_step)) if same_step else float("nan"),
+        "small_call_same": float(np.mean(small_call)) if small_call else float("nan"),
         "metric_diff": metric_diff,
         "metrics_over_tolerance": over,
     }
@@ -287,8 +297,11 @@ def passes_per_image(result) -> float:
 
 
 def compare_plans(sets: list[AuditSet], plans: list, work: Path, *, batch: int = 32,
-                  log=print) -> list[dict]:
-    """Scan every set with the reference grid and with each plan; one row per (set, plan)."""
+                  log=print, floors: list | None = None) -> list[dict]:
+    """Scan every set with the reference grid and with each plan; one row per (set, plan).
+
+    With ``floors`` (a list), the reference's own stability on each set
+    (:func:`stability.stability`) is appended to it, one dict per set."""
     rows = []
     for s in sets:
         ref, t_ref = run_audit(s, REFERENCE, work / "runs" / s.name.replace("/", "_").replace(" ", "_") / "ref",
@@ -296,6 +309,12 @@ def compare_plans(sets: list[AuditSet], plans: list, work: Path, *, batch: int =
         ref_pp = passes_per_image(ref)
         log(f"{s.name}: reference {ref_pp:.1f} passes/image, {t_ref:.1f} s; findings "
             f"{[f'{f.class_name} {f.kind} ({f.status})' for f in ref.findings]}")
+        if floors is not None:
+            st = _stability.stability(s.model, s.images, ref, plan=REFERENCE, config=s.config)
+            floors.append({"set": s.name, **st.__dict__})
+            log(f"  the grid against its own drops perturbed by {st.relative:.1%} of the peak: within a step "
+                f"{st.within_step:.3f} (same {st.same_step:.3f}), small-area call {st.small_call:.3f}; "
+                f"exact steps equal to the scan's on {st.reproduces:.3f}")
         for plan in plans:
             tag = plan_label(plan).replace(":", "_").replace(",", "_").replace("=", "")
             cand, t = run_audit(s, plan, work / "runs" / s.name.replace("/", "_").replace(" ", "_") / tag,
@@ -312,6 +331,7 @@ def compare_plans(sets: list[AuditSet], plans: list, work: Path, *, batch: int =
             log(f"  {row['plan']}: {row['passes']:.1f} passes/image ({row['passes_share']:.2f}), "
                 f"{t:.1f} s ({row['time_share']:.2f}); same findings {row['same_findings']}; "
                 f"region IoU {row['region_iou_min']}; decisive within a step {row['decisive_within_step']:.3f}; "
+                f"small-area call {row['small_call_same']:.3f}; "
                 f"metrics over tolerance {row['metrics_over_tolerance']}; meets bar {row['meets_bar']}")
             if not row["same_findings"]:
                 log(f"    reference: {row['findings_ref']}\n    this plan: {row['findings']}")
@@ -331,14 +351,15 @@ def _fmt(x, spec=".2f"):
 
 def table(rows: list[dict]) -> str:
     lines = ["| set | plan | images | passes/image (share of grid) | time (share) | same findings | "
-             "region IoU min | decisive area within 1 step (same step) | metrics over tolerance | meets bar |",
-             "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"]
+             "region IoU min | decisive area within 1 step (same step) | small-area call same | "
+             "metrics over tolerance | meets bar |",
+             "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"]
     for r in rows:
         lines.append(
             f"| {r['set']} | {r['plan']} | {r['images']} | {r['passes']:.1f} of {r['passes_ref']:.1f} "
             f"({r['passes_share']:.2f}) | {r['seconds']:.1f} s of {r['seconds_ref']:.1f} s ({r['time_share']:.2f}) | "
             f"{'yes' if r['same_findings'] else 'NO'} | {_fmt(r['region_iou_min'])} | "
-            f"{_fmt(r['decisive_within_step'])} ({_fmt(r['decisive_same_step'])}) | "
+            f"{_fmt(r['decisive_within_step'])} ({_fmt(r['decisive_same_step'])}) | {_fmt(r['small_call_same'])} | "
             f"{', '.join(r['metrics_over_tolerance']) or 'none'} | {'yes' if r['meets_bar'] else 'no'} |")
     return "\n".join(lines) + "\n"
 
@@ -350,6 +371,16 @@ def findings_table(rows: list[dict]) -> str:
     lines = ["| set | findings of the exhaustive grid |", "| --- | --- |"]
     for s, f in seen.items():
         lines.append(f"| {s} | {'; '.join(f) or 'none'} |")
+    return "\n".join(lines) + "\n"
+
+
+def floor_table(floors: list[dict]) -> str:
+    lines = ["| set | images | grid against itself, drops perturbed by 0.5% of the peak: decisive area within 1 step "
+             "(same step) | small-area call same | exact steps equal to the scan's |",
+             "| --- | --- | --- | --- | --- |"]
+    for f in floors:
+        lines.append(f"| {f['set']} | {f['images']} | {_fmt(f['within_step'])} ({_fmt(f['same_step'])}) | "
+                     f"{_fmt(f['small_call'])} | {_fmt(f['reproduces'])} |")
     return "\n".join(lines) + "\n"
 
 
@@ -375,6 +406,8 @@ def main(argv=None) -> int:
     ap.add_argument("--no-demo", action="store_true")
     ap.add_argument("--no-generated", action="store_true")
     ap.add_argument("--no-planted", action="store_true", help="leave out the planted-shortcut suite")
+    ap.add_argument("--no-floor", action="store_true",
+                    help="leave out the reference's own stability (the grid against its perturbed drops)")
     ap.add_argument("--json", type=Path)
     ap.add_argument("--no-write", action="store_true", help="do not write bench/RESULTS.md")
     args = ap.parse_args(argv)
@@ -396,7 +429,8 @@ def main(argv=None) -> int:
                                  Path(parts[2]) if len(parts) > 2 and parts[2] else None))
         if args.only:
             sets = [s for s in sets if any(o in s.name for o in args.only)]
-        rows = compare_plans(sets, plans, work)
+        floors: list | None = None if args.no_floor else []
+        rows = compare_plans(sets, plans, work, floors=floors)
     load_after = os.getloadavg()
     head = (f"Run: `python bench/agreement.py` on {time.strftime('%Y-%m-%d %H:%M')}; load average before "
             f"{load_before[0]:.2f}, after {load_after[0]:.2f}; batch size 32, one onnxruntime thread, "
@@ -407,9 +441,14 @@ def main(argv=None) -> int:
             f"of the images. Tolerances of the per-class metrics: "
             + ", ".join(f"{k} {v}" for k, v in TOLERANCES.items()) + ".\n\n")
     block = head + table(rows) + "\n" + findings_table(rows)
+    if floors:
+        block += ("\nThe reference's own stability (bench/stability.py): the exhaustive grid's patch drops "
+                  "recomputed, perturbed by Gaussian noise of 0.5% of each image's largest drop (seed 0), "
+                  "and the ladder climbed again. 'Small-area call' is what the small-area rule reads: "
+                  f"decisive area at most {SMALL_AREA:.0%} or not.\n\n" + floor_table(floors))
     print(block)
     if args.json:
-        args.json.write_text(json.dumps({"rows": rows, "load": [load_before, load_after]}, indent=1,
+        args.json.write_text(json.dumps({"rows": rows, "floors": floors, "load": [load_before, load_after]}, indent=1,
                                         default=float))
     if not args.quick and not args.no_write:
         write_block(HERE / "RESULTS.md", block)
