@@ -240,10 +240,14 @@ def box_iou(a, b) -> float:
     return _box_iou(a, b)
 
 
-def run_audit(s: AuditSet, plan, out: Path, *, batch: int, threads: int = 1, every_curve: bool = False):
+def model_config(s: AuditSet, *, batch: int, threads: int = 1) -> ModelConfig:
+    """The model configuration every audit of ``s`` runs with."""
     cfg = ModelConfig(batch_size=batch, threads=threads)
-    if s.config is not None:
-        cfg = cfg.merged_over(s.config)
+    return cfg.merged_over(s.config) if s.config is not None else cfg
+
+
+def run_audit(s: AuditSet, plan, out: Path, *, batch: int, threads: int = 1, every_curve: bool = False):
+    cfg = model_config(s, batch=batch, threads=threads)
     # the reference is the exhaustive audit: every patch, and the curves of every image
     settings = ScanSettings(plan=plan, curve_images=None) if every_curve else ScanSettings(plan=plan)
     t0 = time.perf_counter()
@@ -310,7 +314,7 @@ def compare_plans(sets: list[AuditSet], plans: list, work: Path, *, batch: int =
         log(f"{s.name}: reference {ref_pp:.1f} passes/image, {t_ref:.1f} s; findings "
             f"{[f'{f.class_name} {f.kind} ({f.status})' for f in ref.findings]}")
         if floors is not None:
-            st = _stability.stability(s.model, s.images, ref, plan=REFERENCE, config=s.config)
+            st = _stability.stability(s.model, s.images, ref, config=model_config(s, batch=batch))
             floors.append({"set": s.name, **st.__dict__})
             log(f"  the grid against its own drops perturbed by {st.relative:.1%} of the peak: within a step "
                 f"{st.within_step:.3f} (same {st.same_step:.3f}), small-area call {st.small_call:.3f}; "

@@ -29,8 +29,8 @@ from shortcut_audit.classes import SMALL_AREA
 from shortcut_audit.dataset import load_image
 from shortcut_audit.maps import _top_mask, heat_order
 from shortcut_audit.model import ModelConfig, OnnxClassifier
-from shortcut_audit.occlusion import fill_image, hidden_image, paste_boxes, patch_boxes
-from shortcut_audit.scan import DEFAULT_FILL
+from shortcut_audit.engine import make_scorer
+from shortcut_audit.occlusion import GridPlan, fill_image, hidden_image, paste_boxes, patch_boxes
 from shortcut_audit.sensitivity import DECISIVE_LADDER
 
 #: Noise levels reported: a share of each image's largest absolute patch drop.
@@ -49,7 +49,7 @@ class Stability:
     reproduces: float       # exact map's step equal to the scan's
 
 
-def first_step(clf, image: np.ndarray, hidden: np.ndarray, values: np.ndarray, target: int,
+def first_step(scorer, image: np.ndarray, hidden: np.ndarray, values: np.ndarray, target: int,
                order_of=heat_order) -> int:
     """First step of the decisive-area ladder whose hiding moves the decision away from
     ``target`` (``len(DECISIVE_LADDER)`` when none does), hiding the hottest pixels of
@@ -57,19 +57,23 @@ def first_step(clf, image: np.ndarray, hidden: np.ndarray, values: np.ndarray, t
     replaces that order, for studies of other orders)."""
     order = order_of(values)
     masks = np.stack([_top_mask(order, s, values.shape) for s in DECISIVE_LADDER])
-    probs = clf.predict(np.where(masks[..., None], hidden[None], image[None]))
-    moved = np.argmax(probs, axis=1) != target
+    scores = scorer(np.where(masks[..., None], hidden[None], image[None]))
+    moved = np.argmax(scores, axis=1) != target
     return int(np.argmax(moved)) if moved.any() else len(DECISIVE_LADDER)
 
 
-def grid_drops(clf, image: np.ndarray, hidden: np.ndarray, boxes: np.ndarray, target: int,
+def grid_drops(scorer, image: np.ndarray, filled: np.ndarray, boxes: np.ndarray, target: int,
                chunk: int = 64) -> np.ndarray:
-    """Score drop of ``target`` for every box of ``boxes`` hidden (the scan's grid heatmap
-    is each pixel's mean of these over the boxes covering it)."""
-    base = clf.predict(image[None])[0, target]
-    scores = np.concatenate([clf.predict(paste_boxes(image, boxes[i:i + chunk], hidden))[:, target]
-                             for i in range(0, len(boxes), chunk)])
-    return float(base) - scores.astype(np.float64)
+    """Score drop of ``target`` for every box of ``boxes`` filled from ``filled`` (the
+    scan's grid heatmap is each pixel's mean of these over the boxes covering it). The
+    unperturbed image goes in the first request with the first ``chunk - 1`` boxes, as
+    the scan sends it."""
+    first = max(1, chunk - 1)
+    got = scorer(np.concatenate([image[None], paste_boxes(image, boxes[:first], filled)]))
+    base, parts = got[0, target], [got[1:, target]]
+    parts += [scorer(paste_boxes(image, boxes[i:i + chunk], filled))[:, target]
+              for i in range(first, len(boxes), chunk)]
+    return float(base) - np.concatenate(parts).astype(np.float64)
 
 
 def scan_step(area: float | None) -> int:
@@ -79,28 +83,33 @@ def scan_step(area: float | None) -> int:
     return int(np.searchsorted(DECISIVE_LADDER, area - 1e-12))
 
 
-def stability(model: Path, images: Path, reference, *, plan, config: ModelConfig | None = None,
+def stability(model: Path, images: Path, reference, *, config: ModelConfig | None = None,
               relative: float = RELATIVE, seed: int = 0, chunk: int = 64) -> Stability:
-    """The grid's decisive steps on ``reference`` (a finished audit of ``images`` with the
-    exhaustive ``plan``), exact and with patch drops perturbed by ``relative`` of each
-    image's largest absolute drop."""
-    clf = OnnxClassifier(model, config)
+    """The grid's decisive steps on ``reference`` (a finished audit of ``images`` with a
+    grid plan), exact and with patch drops perturbed by ``relative`` of each image's
+    largest absolute drop. The plan, fill and score are the audit's own; ``config``
+    should be the model configuration the audit ran with."""
+    settings = reference.settings
+    if not isinstance(settings.plan, GridPlan):
+        raise ValueError(f"stability needs an audit made with a grid plan; got {settings.plan.kind!r}")
+    clf = OnnxClassifier(model, config)     # the output order is all it needs of the labels
+    scorer = make_scorer(clf, settings.score)
     h, w = clf.height, clf.width
-    boxes = patch_boxes(plan, h, w)
-    fill = DEFAULT_FILL    # the scan's, as bench/agreement.py runs it
+    boxes = patch_boxes(settings.plan, h, w)
     exact, noisy, scanned = [], [], []
     rng = np.random.default_rng(seed)
     for im in reference.images:
         p = Path(im.path)
         p = p if p.is_absolute() else Path(images) / p
         x = load_image(p, size=(h, w), channels=clf.channels, resize=clf.resize)
-        hid = hidden_image(x, fill_image(x, fill))
+        filled = fill_image(x, settings.fill)
+        hid = hidden_image(x, filled)
         t = int(im.label)
-        drops = grid_drops(clf, x, hid, boxes, t, chunk)
+        drops = grid_drops(scorer, x, filled, boxes, t, chunk)
         peak = float(np.max(np.abs(drops))) if drops.size else 0.0
         for drops_now, out in ((drops, exact), (drops + rng.normal(0.0, relative * peak, drops.shape), noisy)):
             values, _ = grid_heatmap(h, w, boxes, drops_now)
-            out.append(first_step(clf, x, hid, values.astype(np.float32), t))
+            out.append(first_step(scorer, x, hid, values.astype(np.float32), t))
         scanned.append(scan_step(im.decisive_area))
     exact, noisy, scanned = map(np.asarray, (exact, noisy, scanned))
     n = len(exact)

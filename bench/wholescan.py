@@ -144,8 +144,7 @@ def linear_figure(cfg: dict, work: Path) -> dict:
     last progress event of the images phase), in the order small, middle, large, large,
     middle, small (so a load that drifts during the run weighs on all alike); means of the
     two. Linear growth is judged by the middle size against the line through the other two
-    (no circularity: the line is fitted without it), and by the two equal increments of
-    images costing the same."""
+    (no circularity: the line is fitted without it)."""
     model = builders.save(builders.small_cnn(size=cfg["linear_side"], seed=2), work / "small.onnx")
     sizes = tuple(cfg["linear_sizes"])
     a, m, b = sizes
@@ -174,7 +173,7 @@ def linear_figure(cfg: dict, work: Path) -> dict:
             "phase_seconds": [p[n] for n in sizes], "phase_ratio": p[b] / p[a], "expected": b / a,
             "fixed_seconds": fixed, "per_image_ms": 1000 * per_image,
             "middle_predicted": predicted_middle, "middle_off": w[m] / predicted_middle - 1.0,
-            "increments_ratio": ((w[b] - w[m]) / (b - m)) / ((w[m] - w[a]) / (m - a))}
+            "side": cfg["linear_side"]}
 
 
 def depthwise_figure(cfg: dict, work: Path, threads: int, profile: Path | None = None) -> dict:
@@ -225,14 +224,14 @@ def block(res: dict, machine: dict) -> str:
                      f"{e['measured_seconds']:.1f} s | {e['ratio']:.2f} |")
     lin = res["linear"]
     (a, m, b), (wa, wm, wb), (pa, pm, pb) = lin["sizes"], lin["seconds"], lin["phase_seconds"]
-    lines.append(f"\nLinear growth (small random CNN at 32 x 32, batch 32, one thread, report written; "
+    lines.append(f"\nLinear growth (small random CNN at {lin['side']} x {lin['side']}, batch 32, one thread, report written; "
                  f"each size twice, small to large and back, means): {a} images {wa:.1f} s, {m} images "
                  f"{wm:.1f} s, {b} images {wb:.1f} s. As a line through {a} and {b}: "
                  f"{lin['fixed_seconds']:.1f} s that do not grow with the images + {lin['per_image_ms']:.1f} ms "
                  f"an image; the {m}-image scan lies {lin['middle_off']:+.1%} off that line "
-                 f"({lin['middle_predicted']:.1f} s predicted), and the second {b - m} images cost "
-                 f"{lin['increments_ratio']:.2f} times the first {m - a}. {b} against {a} images: ratio "
-                 f"{lin['ratio']:.2f} (10 only without the part that does not grow); the per-image phase alone "
+                 f"({lin['middle_predicted']:.1f} s predicted). {b} against {a} images: ratio "
+                 f"{lin['ratio']:.2f} ({lin['expected']:.0f} only without the part that does not grow); the "
+                 f"per-image phase alone "
                  f"{pa:.1f}, {pm:.1f} and {pb:.1f} s: ratio {lin['phase_ratio']:.2f}.\n")
     lines.append("Whole scan on the depthwise-separable 224 x 224 network (every pass of the scan over its "
                  "wall time, against the session alone at the same batch size):\n")

@@ -54,7 +54,6 @@ def test_the_grid_agrees_with_itself(tmp_path):
         assert r["decisive_within_step"] == 1.0 and r["decisive_same_step"] == 1.0
         assert all(d == 0.0 for d in r["metric_diff"].values()), r["metric_diff"]
         assert not r["meets_bar"]                             # all the passes: not cheaper
-        assert r["small_call_same"] == 1.0
     floors = json.loads(out.read_text())["floors"]
     assert [f["set"] for f in floors] == [r["set"] for r in same]
     assert all(f["reproduces"] == 1.0 for f in floors)       # the recomputed grid is the scan's
@@ -80,7 +79,8 @@ def test_wholescan_quick_produces_every_figure(tmp_path):
     # the line goes through the two outer sizes; the middle is judged against it
     fixed, per = lin["fixed_seconds"], lin["per_image_ms"] / 1000
     assert fixed + per * lin["sizes"][2] == pytest.approx(lin["seconds"][2])
-    assert lin["middle_off"] == pytest.approx(lin["seconds"][1] / (fixed + per * lin["sizes"][1]) - 1)
+    assert fixed + per * lin["sizes"][0] == pytest.approx(lin["seconds"][0])
+    assert lin["middle_predicted"] == pytest.approx(fixed + per * lin["sizes"][1])
     for d in res["depthwise"]:
         # every pass counted at onnxruntime: the per-image ones and the batch-size measurement's
         assert d["passes"] > d["engine_passes"] > 0
@@ -89,14 +89,17 @@ def test_wholescan_quick_produces_every_figure(tmp_path):
 
 def test_reference_stability_recomputes_the_scans_own_steps(tmp_path):
     # bench/stability.py rebuilds the grid's heatmap from recomputed patch drops and climbs
-    # the ladder again. Without noise it must land on the step of every decisive area the
-    # scan itself found (a reimplementation that differs from the scan fails here), and a
-    # large error on the drops must move some steps (the measure can see a change).
+    # the ladder again, with the audit's own plan, fill and score. Without noise it must
+    # land on the step of every decisive area the scan itself found, for the default
+    # settings and for a constant fill with logit scores (a reimplementation that differs
+    # from the scan, or ignores the audit's settings, fails here), and a large error on
+    # the drops must move some steps (the measure can see a change).
     import shutil
 
     import stability
     from shortcut_audit.demo import demo_paths
     from shortcut_audit.model import read_model_config
+    from shortcut_audit.occlusion import Fill
 
     p = demo_paths()
     m = p.models["baseline"]
@@ -106,14 +109,18 @@ def test_reference_stability_recomputes_the_scans_own_steps(tmp_path):
         for f in sorted(c.iterdir())[:4]:
             shutil.copy(f, images / c.name / f.name)
     s = agreement.AuditSet("demo16", m.onnx, images, None, read_model_config(m.config) if m.config else None)
+    cfg = agreement.model_config(s, batch=32)
     ref, _ = agreement.run_audit(s, agreement.REFERENCE, tmp_path / "ref", batch=32, every_curve=True)
-    steps = {agreement.ladder_step(im.decisive_area) for im in ref.images}
-    assert len(steps) >= 3                      # the images do not all sit on one step
-    exact = stability.stability(s.model, s.images, ref, plan=agreement.REFERENCE, config=s.config, relative=0.0)
-    assert exact.images == 16
-    assert exact.reproduces == 1.0
-    assert exact.within_step == exact.same_step == exact.small_call == 1.0
-    rough = stability.stability(s.model, s.images, ref, plan=agreement.REFERENCE, config=s.config, relative=0.5)
-    assert rough.reproduces == 1.0
+    steps = [agreement.ladder_step(im.decisive_area) for im in ref.images]
+    assert len(set(steps)) >= 3                 # the images do not all sit on one step
+    exact = stability.stability(s.model, s.images, ref, config=cfg, relative=0.0)
+    assert exact.images == 16 and exact.reproduces == 1.0
+    rough = stability.stability(s.model, s.images, ref, config=cfg, relative=0.5)
     assert rough.same_step < 1.0
-    assert 0.0 <= rough.small_call <= 1.0
+
+    other = agreement.sa.audit(images, m.onnx, out=tmp_path / "other", model_config=cfg,
+                               settings=agreement.ScanSettings(plan=agreement.REFERENCE, score="logit",
+                                                               fill=Fill(kind="constant", value=0.0)))
+    other_steps = [agreement.ladder_step(im.decisive_area) for im in other.images]
+    assert other_steps != steps                 # the settings matter to the steps
+    assert stability.stability(s.model, s.images, other, config=cfg, relative=0.0).reproduces == 1.0

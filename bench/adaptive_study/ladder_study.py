@@ -47,6 +47,7 @@ from shortcut_audit.maps import heat_order  # noqa: E402
 from shortcut_audit.model import OnnxClassifier  # noqa: E402
 from shortcut_audit.occlusion import GridPlan, fill_image, hidden_image, patch_boxes  # noqa: E402
 from shortcut_audit.scan import DEFAULT_FILL  # noqa: E402
+from shortcut_audit.sensitivity import DECISIVE_LADDER  # noqa: E402
 
 OUT = HERE / "out"
 FINE = GridPlan(patch=0.125, stride=0.0625)
@@ -59,19 +60,20 @@ def load(s: agreement.AuditSet):
     h, w = clf.height, clf.width
     fine, coarse = patch_boxes(FINE, h, w), patch_boxes(COARSE, h, w)
     paths = sorted(p for p in Path(s.images).rglob("*") if p.suffix.lower() in (".png", ".jpg", ".jpeg"))
-    X, HID, T = [], [], []
+    X, FILLED, HID, T = [], [], [], []
     for p in paths:
         x = load_image(p, size=(h, w), channels=clf.channels, resize=clf.resize)
         X.append(x)
-        HID.append(hidden_image(x, fill_image(x, DEFAULT_FILL)))
+        FILLED.append(fill_image(x, DEFAULT_FILL))
+        HID.append(hidden_image(x, FILLED[-1]))
         T.append(clf.labels.index(p.parent.name))
     cache = OUT / (s.name.replace("/", "_").replace(" ", "_") + ".npz")
     if cache.exists():
         z = np.load(cache)
         gd, cd = z["gd"], z["cd"]
     else:
-        gd = np.array([stability.grid_drops(clf, x, m, fine, t) for x, m, t in zip(X, HID, T)])
-        cd = np.array([stability.grid_drops(clf, x, m, coarse, t) for x, m, t in zip(X, HID, T)])
+        gd = np.array([stability.grid_drops(clf.predict, x, f, fine, t) for x, f, t in zip(X, FILLED, T)])
+        cd = np.array([stability.grid_drops(clf.predict, x, f, coarse, t) for x, f, t in zip(X, FILLED, T)])
         OUT.mkdir(exist_ok=True)
         np.savez_compressed(cache, gd=gd, cd=cd)
     return clf, fine, coarse, X, HID, T, gd, cd
@@ -133,13 +135,15 @@ def main(argv=None) -> int:
                                                            budget=10**6, tol=0.02, per=16)
     orders = {"heat order": heat_order, "near-hot order": near_hot_order}
     summary = {}
+    moved: list[dict] = []
+    shifts: list[float] = []
     for s in sets:
         d = load(s)
         clf, fine, _, X, HID, T, gd, _ = d
         h, w = X[0].shape[:2]
 
         def steps(drop_list, order_of):
-            return np.array([stability.first_step(clf, x, m, grid_heatmap(h, w, fine, g)[0].astype(np.float32), t,
+            return np.array([stability.first_step(clf.predict, x, m, grid_heatmap(h, w, fine, g)[0].astype(np.float32), t,
                                                   order_of=order_of)
                              for x, m, t, g in zip(X, HID, T, drop_list)])
         # the simulation is the real plan: its heatmaps equal adaptive_job's on a few images
@@ -149,8 +153,9 @@ def main(argv=None) -> int:
             sim = grid_heatmap(h, w, fine, plans["adaptive 64"](d, i)[0])[0].astype(np.float32)
             assert np.allclose(real, sim, atol=1e-6), (s.name, i, float(np.abs(real - sim).max()))
         line = [f"{s.name} ({len(X)} images)"]
+        refs = {}
         for oname, order_of in orders.items():
-            ref = steps(gd, order_of)
+            ref = refs[oname] = steps(gd, order_of)
             for pname, plan in plans.items():
                 if oname != "heat order" and pname.startswith("noise 1e"):
                     continue
@@ -160,6 +165,11 @@ def main(argv=None) -> int:
                 passes = float(np.mean([p for _, p in got]))
                 summary.setdefault((oname, pname), []).append((within, passes))
                 line.append(f"{oname}/{pname}: {within:.2f}")
+                if oname == "heat order" and pname.startswith("noise 0.5%"):
+                    moved.extend(describe(clf, X, T, gd, ref, a))
+        shift = float(np.mean(np.abs(refs["near-hot order"] - refs["heat order"]) <= 1))
+        shifts.append(shift)
+        line.append(f"near-hot order's exact steps within 1 step of the tool's: {shift:.2f}")
         print("; ".join(line), flush=True)
     print("\n| order | heatmap | decisive area within 1 step: min over sets | mean | heatmap passes/image (mean) |")
     print("| --- | --- | --- | --- | --- |")
@@ -168,7 +178,30 @@ def main(argv=None) -> int:
         print(f"| {oname} | {pname} | {v[:, 0].min():.2f} | {v[:, 0].mean():.3f} | "
               f"{v[:, 1].mean():.1f} |" if not pname.startswith("noise") else
               f"| {oname} | {pname} | {v[:, 0].min():.2f} | {v[:, 0].mean():.3f} | (grid, 226) |")
+    print(f"\nnear-hot order against the tool's (exact grid): exact steps within one step on "
+          f"{min(shifts):.2f} to {max(shifts):.2f} of a set's images")
+    if moved:
+        p = np.array([m["label_probability"] for m in moved])
+        k = np.array([m["patches_above_0.001"] for m in moved])
+        st = np.array([m["step"] for m in moved])
+        print(f"\nimages whose step moved by more than one under noise of 0.5% of the peak: {len(moved)}; "
+              f"label probability median {np.median(p):.4f} (quartiles {np.quantile(p, 0.25):.4f}, "
+              f"{np.quantile(p, 0.75):.4f}; above 0.997: {np.mean(p > 0.997):.0%}); patches moving the score "
+              f"by more than 0.001: median {np.median(k):.0f} (quartiles {np.quantile(k, 0.25):.0f}, "
+              f"{np.quantile(k, 0.75):.0f}) of 225; the exact grid's step: "
+              + ", ".join(f"{DECISIVE_LADDER[j] if j < len(DECISIVE_LADDER) else 'none'}: {int(np.sum(st == j))}"
+                          for j in range(len(DECISIVE_LADDER) + 1) if np.sum(st == j)))
     return 0
+
+
+def describe(clf, X, T, gd, ref, got) -> list[dict]:
+    """The images whose step moved by more than one: what they have in common."""
+    out = []
+    for i in np.flatnonzero(np.abs(got - ref) > 1):
+        prob = float(clf.predict(X[i][None])[0, T[i]])
+        out.append({"label_probability": prob, "patches_above_0.001": int(np.sum(gd[i] > 1e-3)),
+                    "step": int(ref[i])})
+    return out
 
 
 if __name__ == "__main__":
