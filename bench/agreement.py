@@ -32,7 +32,6 @@ The table is printed and written between this script's markers in bench/RESULTS.
 from __future__ import annotations
 
 import argparse
-import bisect
 import json
 import os
 import sys
@@ -56,10 +55,11 @@ from shortcut_audit.maps import box_iou as _box_iou  # noqa: E402
 from shortcut_audit.model import ModelConfig, read_model_config  # noqa: E402
 from shortcut_audit.occlusion import GridPlan, plan_from_dict  # noqa: E402
 from shortcut_audit.scan import ScanSettings  # noqa: E402
-from shortcut_audit.sensitivity import CURVE_IMAGES, DECISIVE_LADDER  # noqa: E402
+from shortcut_audit.sensitivity import CURVE_IMAGES  # noqa: E402
 from shortcut_audit.classes import SMALL_AREA  # noqa: E402
 
 import stability as _stability  # noqa: E402
+from stability import scan_step as ladder_step  # noqa: E402  (a decisive area's ladder step)
 
 BEGIN = "<!-- agreement:begin -->"
 END = "<!-- agreement:end -->"
@@ -219,13 +219,6 @@ def generated_sets(work: Path, quick: bool) -> list[AuditSet]:
 
 
 # ------------------------------------------------------------------ comparing
-
-def ladder_step(area: float | None) -> int:
-    """Position of a decisive area on the ladder (the step after the last when None)."""
-    if area is None:
-        return len(DECISIVE_LADDER)
-    return bisect.bisect_left(DECISIVE_LADDER, area - 1e-12)
-
 
 def _small(area: float | None) -> bool:
     """The call the small-area rule reads of an image: decisive area at most SMALL_AREA."""

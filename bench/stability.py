@@ -36,7 +36,6 @@ from shortcut_audit.sensitivity import DECISIVE_LADDER
 #: Noise levels reported: a share of each image's largest absolute patch drop.
 RELATIVE = 0.005
 
-_SMALL_STEP = int(np.searchsorted(DECISIVE_LADDER, SMALL_AREA - 1e-12))
 
 
 @dataclass(frozen=True)
@@ -77,7 +76,8 @@ def grid_drops(scorer, image: np.ndarray, filled: np.ndarray, boxes: np.ndarray,
 
 
 def scan_step(area: float | None) -> int:
-    """The ladder step a scan's decisive area lies on (bisection stays within a step)."""
+    """The ladder step a scan's decisive area lies on (bisection stays within a step; the
+    step after the last when None: no move within the ladder's top share)."""
     if area is None:
         return len(DECISIVE_LADDER)
     return int(np.searchsorted(DECISIVE_LADDER, area - 1e-12))
@@ -112,6 +112,7 @@ def stability(model: Path, images: Path, reference, *, config: ModelConfig | Non
             out.append(first_step(scorer, x, hid, values.astype(np.float32), t))
         scanned.append(scan_step(im.decisive_area))
     exact, noisy, scanned = map(np.asarray, (exact, noisy, scanned))
+    small = scan_step(SMALL_AREA)     # the small-area rule's call: on this step or before
     n = len(exact)
     if n == 0:
         nan = float("nan")
@@ -120,6 +121,6 @@ def stability(model: Path, images: Path, reference, *, config: ModelConfig | Non
         images=n, relative=relative,
         within_step=float(np.mean(np.abs(exact - noisy) <= 1)),
         same_step=float(np.mean(exact == noisy)),
-        small_call=float(np.mean((exact <= _SMALL_STEP) == (noisy <= _SMALL_STEP))),
+        small_call=float(np.mean((exact <= small) == (noisy <= small))),
         reproduces=float(np.mean(exact == scanned)),
     )

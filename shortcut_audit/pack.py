@@ -36,8 +36,8 @@ from pathlib import Path, PurePosixPath
 from .errors import DataError, UsageError
 from .report.figures import contact_sheet_png, heatmap_overlay_png, plain_label, safe_name
 from .report.sources import AuditFiles, read_audit
-from .report.words import (KIND_TITLES, STATUS_TITLES, finding_sentence, motif_of, num, p_value_of,
-                           pct, plural, pval, statistic_name, status_sentence, test_of, test_sentence,
+from .report.words import (KIND_TITLES, STATUS_TITLES, finding_sentence, motif_boxes, motif_of, num,
+                           p_value_of, pct, plural, pval, statistic_name, status_sentence, test_of, test_sentence,
                            where)
 from .store import inside, write_bytes_atomic
 
@@ -304,10 +304,7 @@ def _finding_members(finding: dict, audit: dict, files: AuditFiles, folder: str)
     rows = []
     sheet = []
     # a motif's images are outlined where its crop was cut: the thing that recurs
-    ev = finding.get("evidence") or {}
-    motif_boxes = ({p: b for p, b in zip(ev.get("member_paths") or [], ev.get("member_boxes") or [])
-                    if isinstance(p, str) and isinstance(b, (list, tuple)) and len(b) == 4}
-                   if finding.get("kind") == "recurring-motif" else {})
+    crop_boxes = motif_boxes(finding) if finding.get("kind") == "recurring-motif" else {}
     for path in _flagged_paths(finding):
         im = images.get(path) or {}
         rec = files.record(path) or {}
@@ -322,8 +319,8 @@ def _finding_members(finding: dict, audit: dict, files: AuditFiles, folder: str)
                 file_rel = f"images/{_file_name(path)}"
                 members[f"{folder}/{file_rel}"] = data
         box, source = im.get("decisive_box") or rec.get("decisive_box"), "decisive"
-        if path in motif_boxes:
-            box, source = list(motif_boxes[path]), "motif crop"
+        if path in crop_boxes:
+            box, source = list(crop_boxes[path]), "motif crop"
         if not box:
             box, source = im.get("peak_box") or rec.get("peak_box"), "hottest 5%"
         if not box:
@@ -359,7 +356,7 @@ def _finding_members(finding: dict, audit: dict, files: AuditFiles, folder: str)
     members[f"{folder}/manifest.csv"] = buf.getvalue().encode("utf-8")
     title = (f"{finding.get('id', '?')} {finding.get('kind', '')}: {finding.get('class', '?')} "
              f"({STATUS_TITLES.get(finding.get('status'), finding.get('status'))})")
-    note = ("dashed box: where the motif's crop was cut in each image" if motif_boxes else
+    note = ("dashed box: where the motif's crop was cut in each image" if crop_boxes else
             "dashed box: the region whose hiding changes the answer (or, where none does, the hottest 5%)")
     members[f"{folder}/contact_sheet.png"] = contact_sheet_png(sheet, title=title, note=note)
     members[f"{folder}/request.md"] = request_text(

@@ -389,7 +389,8 @@ def test_motif_strip_cuts_each_image_where_the_motif_was_found():
     # A motif found by pasting sits where its evidence says, not at the image's decisive
     # region: the strip cuts it there (box [x0, y0, x1, y1] 0.5-1.0 of an 8x8 image is
     # pixels 4-8), and falls back to the stored decisive crop for an image with no box.
-    from shortcut_audit.report.scan_page import _motif_boxes, _motif_crop
+    from shortcut_audit.report.scan_page import _motif_crop
+    from shortcut_audit.report.words import motif_boxes as _motif_boxes
 
     pixels = np.arange(8 * 8 * 3, dtype=np.float32).reshape(8, 8, 3)
     stored = np.zeros((2, 2, 3), np.float32)

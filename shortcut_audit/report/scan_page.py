@@ -30,8 +30,8 @@ from ..store import ResultStore, dumps, write_bytes_atomic
 from . import figures as fg
 from .html import data_uri, render
 from .sources import AuditFiles
-from .words import (KIND_TITLES, STATUS_TITLES, finding_sentence, motif_of, num, p_value_of, pct,
-                    pval, statistic_name, status_sentence, test_of, test_sentence, where)
+from .words import (KIND_TITLES, STATUS_TITLES, finding_sentence, motif_boxes, motif_of, num, p_value_of,
+                    pct, pval, statistic_name, status_sentence, test_of, test_sentence, where)
 
 __all__ = [
     "GALLERY_SIZE",
@@ -167,18 +167,6 @@ def gallery_scale(heatmaps: list[np.ndarray]) -> float:
     return max(float(np.percentile(pos, GALLERY_TOP_PERCENTILE)), 1e-12)
 
 
-def _motif_boxes(finding: dict) -> dict[str, list]:
-    """Where a motif's crop was cut in each of its images (path -> box), from its evidence."""
-    ev = finding.get("evidence") or {}
-    if finding.get("kind") != "recurring-motif":
-        ev = ev.get("motif") if isinstance(ev.get("motif"), dict) else {}
-    out = {p: b for p, b in zip(ev.get("member_paths") or [], ev.get("member_boxes") or [])
-           if isinstance(p, str) and isinstance(b, (list, tuple)) and len(b) == 4}
-    if isinstance(ev.get("medoid"), str) and isinstance(ev.get("medoid_box"), (list, tuple)):
-        out.setdefault(ev["medoid"], ev["medoid_box"])
-    return out
-
-
 def _motif_crop(files: AuditFiles, path: str, boxes: dict[str, list]) -> np.ndarray | None:
     """The motif's crop in image ``path``: cut at its box when the evidence gives one (a motif
     found by pasting is not where the image's decisive region is), else the stored crop."""
@@ -268,7 +256,7 @@ def build_figures(audit: dict, files: AuditFiles, *,
                  masks=f.get("kind") in ("background", "image-wide"), figures=figures)
         motif = entry["motif"]
         if motif and motif["medoid"]:
-            boxes = _motif_boxes(f)
+            boxes = motif_boxes(f)
             medoid = _motif_crop(files, motif["medoid"], boxes)
             crops = [_motif_crop(files, p, boxes) for p in motif["members"]]
             if medoid is not None and medoid.size:

@@ -24,6 +24,7 @@ __all__ = [
     "p_value_of",
     "test_of",
     "motif_of",
+    "motif_boxes",
     "test_sentence",
 ]
 
@@ -231,6 +232,26 @@ def status_sentence(finding: dict) -> str:
     return "Suspect: seen in the heatmaps, not tested yet."
 
 
+def _motif_evidence(finding: dict) -> dict | None:
+    """The evidence that describes a finding's motif: its own for a recurring-motif, the
+    ``motif`` entry of another kind's (None when it has none)."""
+    ev = finding.get("evidence") or {}
+    if finding.get("kind") == "recurring-motif":
+        return ev
+    return ev.get("motif") if isinstance(ev.get("motif"), dict) else None
+
+
+def motif_boxes(finding: dict) -> dict[str, list]:
+    """Where a finding's motif crop was cut in each of its images (path -> box
+    ``[x0, y0, x1, y1]``), from its evidence; empty when it gives none."""
+    ev = _motif_evidence(finding) or {}
+    out = {p: b for p, b in zip(ev.get("member_paths") or [], ev.get("member_boxes") or [])
+           if isinstance(p, str) and isinstance(b, (list, tuple)) and len(b) == 4}
+    if isinstance(ev.get("medoid"), str) and isinstance(ev.get("medoid_box"), (list, tuple)):
+        out.setdefault(ev["medoid"], ev["medoid_box"])
+    return out
+
+
 def motif_of(finding: dict) -> dict | None:
     """The motif behind a finding, ``{"medoid": path | None, "members": [paths]}``.
 
@@ -238,11 +259,9 @@ def motif_of(finding: dict) -> dict | None:
     or ``members``); a fixed-position finding whose region also looks alike from image to
     image carries it under ``evidence["motif"]``. None when there is no motif.
     """
-    ev = finding.get("evidence") or {}
-    if finding.get("kind") != "recurring-motif":
-        ev = ev.get("motif") if isinstance(ev.get("motif"), dict) else None
-        if ev is None:
-            return None
+    ev = _motif_evidence(finding)
+    if ev is None:
+        return None
     medoid = ev.get("medoid") if isinstance(ev.get("medoid"), str) else None
     raw = ev.get("member_paths", ev.get("members")) or []
     members = [m for m in raw if isinstance(m, str)]
